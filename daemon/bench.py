@@ -1,0 +1,163 @@
+"""Build a bench from its config: the mask set, the devices (by name from the
+driver registry) and, for a simulated bench, the simulated optics and the
+firmware simulators on pseudo-terminals.
+
+``Bench.close()`` always closes the shutter first, then every device, then the
+firmware; it is safe to call after a partial ``open()``.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import logging
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from maskrun.drivers import BenchContext, Camera, DeviceError, Modulator, SafetyBox
+from maskrun.drivers.errors import DriverSettingsError, UnknownDriver
+
+from .checks import Response
+from .config import BenchConfig, ConfigError
+from .masks import make_masks
+
+log = logging.getLogger(__name__)
+
+
+@dataclass
+class Bench:
+    config: BenchConfig
+    masks: np.ndarray
+    camera: Camera
+    modulator: Modulator
+    safety: SafetyBox
+    response: Response
+    context: BenchContext
+    optics: Any = None  # SimulatedOptics on a simulated bench
+    truth: np.ndarray | None = None  # sqrt(incident photons / s), simulated benches only
+    firmware: list = field(default_factory=list)
+    _opened: list = field(default_factory=list)
+
+    @property
+    def grid_shape(self) -> tuple[int, int]:
+        return tuple(self.config.grid.shape)
+
+    @property
+    def simulated(self) -> bool:
+        return self.optics is not None
+
+    def open(self) -> None:
+        """Open the safety box first (and close its shutter), then modulator and camera."""
+        for dev in (self.safety, self.modulator, self.camera):
+            dev.open()
+            self._opened.append(dev)
+            if dev is self.safety:
+                self.safety.close_shutter()
+        self.camera.exposure_s = self.config.camera.exposure_s
+        rows, cols = self.camera.sensor_shape
+        h, w = self.grid_shape
+        self.camera.roi = ((rows - h) // 2, (cols - w) // 2, h, w)
+        self.modulator.load(self.masks)
+
+    def close(self) -> None:
+        """Shutter closed first, whatever else fails; then devices; then simulators."""
+        with contextlib.suppress(Exception):
+            self.safety.close_shutter()
+        for dev in reversed(self._opened):
+            try:
+                dev.close()
+            except Exception as exc:  # keep closing the rest
+                log.warning("closing %s failed: %s", dev.kind, exc)
+        self._opened.clear()
+        for fw in self.firmware:
+            with contextlib.suppress(Exception):
+                fw.stop()
+        self.firmware.clear()
+
+    def __enter__(self):
+        try:
+            self.open()
+        except BaseException:
+            self.close()
+            raise
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+        return False
+
+
+def _driver(kind: str, table: str, dev_cfg, context: BenchContext, source: str):
+    from maskrun.drivers.registry import build_driver
+
+    try:
+        return build_driver(kind, dev_cfg.driver, dict(dev_cfg.settings), context)
+    except UnknownDriver as exc:
+        raise ConfigError(source, [(f"{table}.driver", str(exc))]) from None
+    except DriverSettingsError as exc:
+        raise ConfigError(source, [(f"{table}.{path}", msg) for path, msg in exc.problems]) from None
+
+
+def build_bench(cfg: BenchConfig) -> Bench:
+    """Construct (but do not open) the bench. Raises ConfigError for anything the config got wrong."""
+    src = cfg.source_path
+    grid = tuple(cfg.grid.shape)
+    try:
+        masks = make_masks(cfg.masks.family, cfg.masks.count, grid, cfg.masks.seed, cfg.masks.levels,
+                           cfg.config_dir / cfg.masks.path if cfg.masks.path else None)
+    except (ValueError, OSError) as exc:
+        raise ConfigError(src, [("masks", str(exc))]) from None
+    context = BenchContext(config_dir=str(cfg.config_dir))
+    firmware = []
+    try:
+        camera = _driver("camera", "camera", cfg.camera, context, src)
+        rows, cols = camera.sensor_shape
+        if rows < grid[0] or cols < grid[1]:
+            raise ConfigError(
+                src,
+                [("camera.settings.sensor_shape",
+                  f"camera sensor {rows}x{cols} is smaller than the reconstruction grid {grid[0]}x{grid[1]} "
+                  "([grid] shape); use a smaller grid or a larger sensor")],
+            )
+        optics = truth = None
+        if cfg.simulation is not None:
+            optics, truth = _simulated_optics(cfg, masks, (rows, cols))
+            context.optics = optics
+            from maskrun.simulators.firmware import start_firmware
+
+            for name, fw_cfg in cfg.simulation.firmware.items():
+                handle = start_firmware(name, optics, faults=fw_cfg.faults, settle_s=fw_cfg.settle_s, name=name)
+                firmware.append(handle)
+                context.ports[name] = handle.port
+        modulator = _driver("modulator", "modulator", cfg.modulator, context, src)
+        safety = _driver("safety", "safety", cfg.safety, context, src)
+    except BaseException:
+        for fw in firmware:
+            fw.stop()
+        raise
+    response = Response(cfg.response.gain_dn_per_e, cfg.response.offset_dn, cfg.response.quantum_efficiency)
+    return Bench(cfg, masks, camera, modulator, safety, response, context, optics, truth, firmware)
+
+
+def _simulated_optics(cfg: BenchConfig, masks: np.ndarray, sensor_shape):
+    from maskrun.simulators.optics import SimulatedOptics
+    from maskrun.simulators.sample import phase_target
+
+    sample = phase_target(tuple(cfg.grid.shape), wavelength_m=cfg.laser.wavelength_m)
+    optics = SimulatedOptics(sample.field, masks, cfg.simulation.photon_rate_per_s, sensor_shape)
+    return optics, optics.truth_field()
+
+
+def open_bench(cfg: BenchConfig) -> Bench:
+    """build_bench + open, closing everything again if opening fails."""
+    bench = build_bench(cfg)
+    try:
+        bench.open()
+    except BaseException:
+        bench.close()
+        raise
+    return bench
+
+
+__all__ = ["Bench", "build_bench", "open_bench", "DeviceError"]

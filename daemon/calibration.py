@@ -1,0 +1,232 @@
+"""Drive a camera and a shutter through an EMVA 1288 photon transfer series.
+
+``measure_photon_transfer`` takes, for every exposure, dark frames with the
+shutter closed and bright frames with the shutter open, reduces each step to
+its statistics at once (no frame series is held in memory) and fits the
+camera with ``photon_transfer.analyse_photon_transfer``. The shutter is closed
+in a ``finally`` whatever happens (safety rule: any fault leaves the bench
+with the shutter closed).
+
+The light must be steady and spatially uniform over the frame (no sample and no
+mask in the beam; a diffuser in front of the camera), as EMVA 1288 requires.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Callable, Sequence
+
+import numpy as np
+
+from ..drivers.base import Camera, Frame, SafetyBox
+from ..drivers.errors import DeviceFault
+from .photon_transfer import (
+    PhotonTransferError,
+    PhotonTransferResult,
+    StepStatistics,
+    analyse_photon_transfer,
+    mean_and_temporal_variance,
+    step_statistics,
+)
+
+__all__ = ["ProgressCallback", "measure_photon_transfer", "default_exposure_series", "CalibrationAborted"]
+
+#: progress(done_frames, total_frames, what) is called after every frame.
+ProgressCallback = Callable[[int, int, str], None]
+
+#: Exposure reported by the camera may differ from the request by this much (relative) before we refuse.
+_EXPOSURE_TOLERANCE = 0.05
+
+
+class CalibrationAborted(RuntimeError):
+    """A device failed during the series. ``steps`` holds the statistics measured so far; the shutter is closed."""
+
+    def __init__(self, message: str, steps: Sequence[StepStatistics]):
+        self.steps = list(steps)
+        super().__init__(message)
+
+
+def _grab(camera: Camera, exposure_s: float, timeout_s: float) -> Frame:
+    camera.trigger()
+    return camera.grab(timeout_s)
+
+
+def _take_frames(camera: Camera, exposure_s: float, count: int, discard: int, timeout_s: float) -> list[np.ndarray]:
+    frames: list[np.ndarray] = []
+    for _ in range(discard):
+        _grab(camera, exposure_s, timeout_s)
+    while len(frames) < count:
+        frame = _grab(camera, exposure_s, timeout_s)
+        used = float(frame.exposure_s)
+        if not math.isclose(used, exposure_s, rel_tol=_EXPOSURE_TOLERANCE, abs_tol=1e-7):
+            raise DeviceFault(
+                f"requested exposure {exposure_s:.6g} s but the frame reports {used:.6g} s",
+                device="camera",
+                hint="give exposures inside the camera's range and step (see its documentation)",
+            )
+        frames.append(np.array(frame.pixels, copy=True))
+    return frames
+
+
+def measure_photon_transfer(
+    camera: Camera,
+    safety_box: SafetyBox,
+    exposures_s: Sequence[float],
+    *,
+    frames_per_step: int = 2,
+    progress: ProgressCallback | None = None,
+    photons_per_pixel_per_s: float | None = None,
+    discard_frames: int = 0,
+    timeout_margin_s: float = 5.0,
+) -> PhotonTransferResult:
+    """Measure and fit a photon transfer series (EMVA 1288 R4.0 Linear).
+
+    camera, safety_box: opened maskrun drivers. The camera's ROI, binning and gain stay as set.
+    exposures_s: exposure times [s], from (nearly) dark to beyond saturation; EMVA suggests ~50
+        equally spaced steps. Duplicates are allowed; order does not matter.
+    frames_per_step: bright frames and dark frames per exposure (>= 2, even numbers use all frames).
+    progress: called as progress(done_frames, total_frames, message) after every frame.
+    photons_per_pixel_per_s: known irradiance as incident photons per pixel per second; gives the
+        quantum efficiency and linearity against photons. None: linearity against exposure time.
+    discard_frames: frames thrown away after every change of exposure or shutter (for
+        free-running cameras whose next frame may still belong to the old setting).
+    timeout_margin_s: grab timeout = 2 x exposure + this margin.
+
+    Order: all dark steps first (shutter closed), then all bright steps (shutter open), so the
+    shutter moves only twice. The shutter is closed in a ``finally`` whatever happens.
+    Raises CalibrationAborted (device failure; keeps the steps measured so far) or the typed
+    PhotonTransferError of the analysis (LightTooWeak, SaturatedFromStart, TooFewSteps),
+    which also keeps the measured steps in ``.steps``.
+    """
+    exposures = [float(t) for t in exposures_s]
+    if not exposures:
+        raise ValueError("give at least one exposure time (seconds)")
+    bad = [t for t in exposures if not (math.isfinite(t) and t > 0)]
+    if bad:
+        raise ValueError(f"exposure times must be finite and > 0 seconds, got {bad[:3]}")
+    if int(frames_per_step) != frames_per_step or frames_per_step < 2:
+        raise ValueError(
+            f"frames_per_step must be an integer >= 2 (EMVA needs a pair A, B per step), got {frames_per_step}"
+        )
+    if photons_per_pixel_per_s is not None and not (photons_per_pixel_per_s >= 0):
+        raise ValueError(f"photons_per_pixel_per_s must be >= 0, got {photons_per_pixel_per_s}")
+    frames_per_step = int(frames_per_step)
+    total = 2 * frames_per_step * len(exposures)
+    done = 0
+    max_dn = int(camera.max_dn)
+    dark_stats: list[tuple[float, float]] = []
+    steps: list[StepStatistics] = []
+    saved_exposure = camera.exposure_s
+
+    def tick(message: str) -> None:
+        nonlocal done
+        done += frames_per_step
+        if progress is not None:
+            progress(done, total, message)
+
+    try:
+        safety_box.close_shutter()
+        if safety_box.shutter_is_open():
+            raise DeviceFault("the shutter reports open after a close command", device="safety",
+                              hint="check the shutter before calibrating; no bright frames were taken")
+        # Dark pairs (shutter closed), reduced to (mean, variance) at once.
+        for t in exposures:
+            camera.exposure_s = t
+            frames = _take_frames(camera, t, frames_per_step, discard_frames, 2 * t + timeout_margin_s)
+            dark_stats.append(mean_and_temporal_variance(frames))
+            tick(f"dark {t:.4g} s")
+        safety_box.open_shutter()
+        for t, darks in zip(exposures, dark_stats):
+            camera.exposure_s = t
+            bright = _take_frames(camera, t, frames_per_step, discard_frames, 2 * t + timeout_margin_s)
+            if not safety_box.shutter_is_open():
+                raise DeviceFault(
+                    f"the shutter closed during the bright frames at {t:.4g} s (interlock opened?)",
+                    device="safety",
+                    hint="close the interlock chain and calibrate again; the frames of this step were discarded",
+                )
+            mu_p = None if photons_per_pixel_per_s is None else photons_per_pixel_per_s * t
+            steps.append(step_statistics(t, bright, darks, photons_per_pixel=mu_p, max_dn=max_dn))
+            tick(f"bright {t:.4g} s")
+    except PhotonTransferError:
+        raise
+    except Exception as exc:
+        raise CalibrationAborted(
+            f"photon transfer stopped after {len(steps)} of {len(exposures)} bright steps: {exc}", steps
+        ) from exc
+    finally:
+        safety_box.close_shutter()
+        try:
+            camera.exposure_s = saved_exposure
+        except Exception:
+            pass
+    return analyse_photon_transfer(steps, max_dn=max_dn)
+
+
+def default_exposure_series(
+    camera: Camera,
+    safety_box: SafetyBox | None = None,
+    *,
+    steps: int = 50,
+    longest_s: float | None = None,
+    overshoot: float = 1.6,
+    probe_exposure_s: float | None = None,
+    max_probe_tries: int = 8,
+    timeout_margin_s: float = 5.0,
+) -> list[float]:
+    """Equally spaced exposures from longest_s/steps to longest_s (EMVA 1288 recommends equal
+    steps in irradiation, about 50 of them, from memory).
+
+    longest_s: the longest exposure [s]; if None it is found with a probe: with the shutter
+        open one frame at ``probe_exposure_s`` (default: the camera's current exposure) is
+        compared with a dark frame; the exposure at which the mean signal would reach the
+        ADC maximum, times ``overshoot``, becomes the longest exposure. A probe that clips
+        halves the exposure and retries (up to ``max_probe_tries``). Needs ``safety_box``.
+    Raises ValueError with advice if no light is seen or every probe clips.
+    """
+    if steps < 5:
+        raise ValueError(f"steps must be >= 5 for a photon transfer series, got {steps} (EMVA suggests ~50)")
+    if longest_s is None:
+        if safety_box is None:
+            raise ValueError("give longest_s, or a safety_box so the light can be probed with the shutter open")
+        longest_s = overshoot * _probe_saturation_exposure(
+            camera, safety_box, probe_exposure_s or float(camera.exposure_s), max_probe_tries, timeout_margin_s
+        )
+    if not (math.isfinite(longest_s) and longest_s > 0):
+        raise ValueError(f"longest_s must be a finite time > 0 seconds, got {longest_s}")
+    return [float(longest_s * (i + 1) / steps) for i in range(steps)]
+
+
+def _probe_saturation_exposure(camera, safety_box, exposure_s, tries, margin_s) -> float:
+    """Exposure [s] at which the mean signal would reach the ADC maximum (linear extrapolation)."""
+    saved = camera.exposure_s
+    max_dn = camera.max_dn
+    try:
+        safety_box.close_shutter()
+        for _ in range(tries):
+            camera.exposure_s = exposure_s
+            dark = float(np.mean(_take_frames(camera, exposure_s, 1, 0, 2 * exposure_s + margin_s)[0]))
+            safety_box.open_shutter()
+            bright_frame = _take_frames(camera, exposure_s, 1, 0, 2 * exposure_s + margin_s)[0]
+            safety_box.close_shutter()
+            clipped = np.count_nonzero(bright_frame >= max_dn) / bright_frame.size
+            signal = float(np.mean(bright_frame)) - dark
+            if clipped > 0.01:
+                exposure_s /= 2.0
+                continue
+            noise_floor = 3.0 * max(float(np.std(bright_frame)) / math.sqrt(bright_frame.size), 0.5)
+            if signal <= noise_floor:
+                raise ValueError(
+                    f"no light seen at {exposure_s:.3g} s (signal {signal:.2f} DN above dark): check that the "
+                    "light is on and reaches the camera, or give longest_s"
+                )
+            return exposure_s * (max_dn - dark) / signal
+        raise ValueError(
+            f"the probe frame still clips at {exposure_s:.3g} s: lower the light, or give longest_s"
+        )
+    finally:
+        safety_box.close_shutter()
+        try:
+            camera.exposure_s = saved
+        except Exception:
+            pass

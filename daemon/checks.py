@@ -1,0 +1,105 @@
+"""Per-frame checks: saturation, photons against limits, frame-id staleness.
+
+Pure functions on arrays; no devices, no I/O. Counts are converted to photons
+with the camera response (gain in DN per electron, quantum efficiency) after
+subtracting the dark level (the mean dark frame, or the offset before darks
+exist).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .store import FLAG_ID_GAP, FLAG_PHOTONS_HIGH, FLAG_PHOTONS_LOW, FLAG_SATURATED
+
+
+@dataclass(frozen=True)
+class Response:
+    """Camera response used to turn counts into photons."""
+
+    gain_dn_per_e: float
+    offset_dn: float
+    quantum_efficiency: float
+
+    def electrons(self, pixels: np.ndarray, dark_dn: np.ndarray | float) -> np.ndarray:
+        """Detected photo-electrons per pixel (float32). Negative values (noise around the dark level) are kept."""
+        out = np.subtract(pixels, dark_dn, dtype=np.float32)
+        out *= np.float32(1.0 / self.gain_dn_per_e)
+        return out
+
+
+@dataclass(frozen=True)
+class CheckLimits:
+    max_dn: int
+    saturation_level: float  # fraction of max_dn at which a pixel counts as saturated
+    max_saturated_fraction: float
+    min_photons_per_frame: float
+    max_photons_per_frame: float
+
+
+@dataclass
+class FrameCheck:
+    saturated_fraction: float
+    peak_dn: int
+    electrons: float  # detected, dark-subtracted
+    photons: float  # incident = electrons / QE
+    flags: int
+    problems: list[str] = field(default_factory=list)
+
+    @property
+    def ok(self) -> bool:
+        return not self.problems
+
+
+def check_frame(pixels: np.ndarray, dark_dn: np.ndarray | float, response: Response, limits: CheckLimits) -> FrameCheck:
+    """Check one frame. Vectorised; a 1024x1024 frame costs a few milliseconds."""
+    threshold = limits.saturation_level * limits.max_dn
+    peak = int(pixels.max())
+    saturated = float(np.count_nonzero(pixels >= threshold)) / pixels.size
+    dark_total = np.sum(dark_dn, dtype=np.float64) if np.ndim(dark_dn) else float(dark_dn) * pixels.size
+    electrons = (float(np.sum(pixels, dtype=np.float64)) - dark_total) / response.gain_dn_per_e
+    photons = electrons / response.quantum_efficiency
+    flags = 0
+    problems = []
+    if saturated > limits.max_saturated_fraction:
+        flags |= FLAG_SATURATED
+        problems.append(
+            f"{saturated:.2%} of pixels saturated (limit {limits.max_saturated_fraction:.2%}); "
+            "shorten the exposure or attenuate the beam"
+        )
+    if photons < limits.min_photons_per_frame:
+        flags |= FLAG_PHOTONS_LOW
+        problems.append(f"{photons:.3g} photons in the frame, below the minimum {limits.min_photons_per_frame:.3g}")
+    if photons > limits.max_photons_per_frame:
+        flags |= FLAG_PHOTONS_HIGH
+        problems.append(f"{photons:.3g} photons in the frame, above the maximum {limits.max_photons_per_frame:.3g}")
+    return FrameCheck(saturated, peak, electrons, photons, flags, problems)
+
+
+class FrameIdTracker:
+    """Frame ids must advance. A repeated or older id is a stale frame; a jump of more than one is a drop."""
+
+    def __init__(self):
+        self.last_id: int | None = None
+
+    def classify(self, frame_id: int) -> str:
+        """'new', 'stale' (id did not advance) or 'gap' (advanced by more than one)."""
+        if self.last_id is not None and frame_id <= self.last_id:
+            return "stale"
+        kind = "gap" if self.last_id is not None and frame_id > self.last_id + 1 else "new"
+        self.last_id = frame_id
+        return kind
+
+    @staticmethod
+    def flag_for(kind: str) -> int:
+        return FLAG_ID_GAP if kind == "gap" else 0
+
+
+def downsample_preview(pixels: np.ndarray, max_side: int = 128) -> np.ndarray:
+    """Block-mean preview, at most max_side on each side (float32)."""
+    rows, cols = pixels.shape
+    f = max(1, int(np.ceil(max(rows, cols) / max_side)))
+    r, c = rows // f * f, cols // f * f
+    return pixels[:r, :c].reshape(r // f, f, c // f, f).mean(axis=(1, 3), dtype=np.float32)

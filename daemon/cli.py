@@ -1,0 +1,71 @@
+"""The `maskrun` command: one command, verbs that say what they do.
+
+Each verb lives in a module that provides ``register(subparsers)``; the verb's
+handler returns an exit code. Expected failures (bad config, unwritable
+folder, device errors, refused safety acknowledgement) print one clear line
+and exit non-zero without a traceback; set MASKRUN_DEBUG=1 to see tracebacks.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import os
+import sys
+
+from rich.console import Console
+
+COMMAND_MODULES = [
+    "maskrun.daemon.cmd_run",
+]
+
+
+def build_parser() -> argparse.ArgumentParser:
+    ap = argparse.ArgumentParser(
+        prog="maskrun",
+        description="Run a coded-mask phase-imaging bench: sequence masks, take and check frames, "
+        "store them safely, reconstruct live.",
+    )
+    sub = ap.add_subparsers(dest="verb", metavar="VERB")
+    for name in COMMAND_MODULES:
+        importlib.import_module(name).register(sub)
+    return ap
+
+
+def expected_errors() -> tuple[type[BaseException], ...]:
+    from maskrun.drivers import DeviceError
+    from maskrun.drivers.errors import DriverSettingsError, UnknownDriver
+
+    from .config import ConfigError
+    from .safety import SafetyNotAcknowledged
+    from .store import StoreError
+
+    return (ConfigError, StoreError, SafetyNotAcknowledged, DeviceError, UnknownDriver, DriverSettingsError, CommandError)
+
+
+class CommandError(RuntimeError):
+    """A verb failed for a reason the user can fix; the message says how."""
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = build_parser()
+    args = ap.parse_args(argv)
+    if not getattr(args, "func", None):
+        ap.print_help()
+        return 2
+    err = Console(stderr=True, highlight=False)
+    try:
+        return int(args.func(args) or 0)
+    except expected_errors() as exc:
+        if os.environ.get("MASKRUN_DEBUG"):
+            raise
+        for line in str(exc).splitlines():
+            err.print(f"[bold red]error:[/] {line}", soft_wrap=True)
+        return 2
+    except KeyboardInterrupt:
+        err.print("[bold red]interrupted[/]")
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,258 @@
+"""Bench and run configuration: TOML files validated by pydantic models.
+
+Every table rejects unknown keys. ``load_config(path)`` raises ``ConfigError``
+whose message names the file, the key path and what was expected, one line per
+problem, so the CLI can print it without a traceback.
+
+Units are in the key names: ``_s`` seconds, ``_m`` metres, ``_w`` watts.
+"""
+
+from __future__ import annotations
+
+import importlib.resources
+import math
+import tomllib
+from pathlib import Path
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, PrivateAttr, field_validator, model_validator
+
+
+class ConfigError(ValueError):
+    """A bench config is missing, malformed or invalid. ``problems`` is a list of (key path, message)."""
+
+    def __init__(self, source: str, problems: list[tuple[str, str]]):
+        self.source = source
+        self.problems = problems
+        lines = [f"{source}: {path}: {msg}" if path else f"{source}: {msg}" for path, msg in problems]
+        super().__init__("\n".join(lines))
+
+
+class _Table(BaseModel):
+    model_config = ConfigDict(extra="forbid", validate_assignment=True)
+
+
+LaserClass = Literal["1", "1M", "2", "2M", "3R", "3B", "4"]
+
+
+class LaserConfig(_Table):
+    """The source. Shown in the safety notice before every run."""
+
+    description: str = "laser"
+    laser_class: LaserClass = Field(description="IEC 60825-1 class of the source")
+    wavelength_m: float = Field(gt=1e-12, lt=1e-3)
+    power_w: float = Field(gt=0)
+    eyewear: str = Field(
+        default="eyewear of the optical density required at this wavelength by the site's rules",
+        description="what eyewear the site requires",
+    )
+    safety_officer: str = Field(default="the site's laser safety officer", description="who to contact")
+
+
+class GridConfig(_Table):
+    """The reconstruction grid (rows, cols); the camera ROI is this size, centred."""
+
+    shape: tuple[int, int] = (128, 128)
+
+    @field_validator("shape")
+    @classmethod
+    def _positive(cls, v):
+        if v[0] < 4 or v[1] < 4:
+            raise ValueError("each grid dimension must be at least 4 pixels")
+        return v
+
+
+class MaskConfig(_Table):
+    """The mask set shown by the modulator."""
+
+    family: Literal["octanary", "random_phase", "quantized_phase", "binary_amplitude", "file"] = "octanary"
+    count: int = Field(8, description="number of masks K per frame set")
+    seed: int = 0
+    levels: int = Field(8, ge=2, description="phase levels for quantized_phase")
+    path: str | None = Field(None, description="mask file (.npy/.npz) for family = 'file'")
+
+    @field_validator("count")
+    @classmethod
+    def _count(cls, v):
+        if v < 1:
+            raise ValueError("at least one mask is needed (K >= 1; K >= 4 recommended for a unique solution)")
+        return v
+
+    @model_validator(mode="after")
+    def _file_needs_path(self):
+        if self.family == "file" and not self.path:
+            raise ValueError("family = 'file' needs path = '<masks.npy>'")
+        return self
+
+
+class DeviceConfig(_Table):
+    """A device built by name from the driver registry; ``settings`` are the driver's own."""
+
+    driver: str
+    settings: dict[str, Any] = Field(default_factory=dict)
+
+
+class CameraConfig(DeviceConfig):
+    exposure_s: float = Field(0.01, gt=0, le=3600)
+    grab_timeout_s: float = Field(2.0, gt=0, description="longest wait for one frame beyond the exposure")
+
+
+class ResponseConfig(_Table):
+    """Conversion of camera counts to photons (from a calibration profile or the data sheet)."""
+
+    gain_dn_per_e: float = Field(gt=0)
+    offset_dn: float = Field(0.0, ge=0)
+    quantum_efficiency: float = Field(gt=0, le=1)
+    profile: str | None = Field(None, description="camera profile file from 'maskrun calibrate'; overrides the values above")
+
+
+class ChecksConfig(_Table):
+    """Per-frame checks."""
+
+    saturation_level: float = Field(
+        0.98, gt=0, le=1, description="a pixel counts as saturated at this fraction of the ADC maximum"
+    )
+    max_saturated_fraction: float = Field(0.001, ge=0, le=1)
+    min_photons_per_frame: float = Field(0.0, ge=0)
+    max_photons_per_frame: float = Field(math.inf, gt=0)
+    saturation_action: Literal["flag", "shorten", "stop"] = "flag"
+    stale_retakes: int = Field(3, ge=0, description="retakes allowed when a frame id does not advance")
+
+    @model_validator(mode="after")
+    def _order(self):
+        if self.min_photons_per_frame >= self.max_photons_per_frame:
+            raise ValueError("min_photons_per_frame must be below max_photons_per_frame")
+        return self
+
+
+class ReconstructionConfig(_Table):
+    enabled: bool = True
+    method: str = "auto"
+    mode: Literal["accumulate", "follow"] = "accumulate"
+    window: int = Field(1, ge=1)
+    iterations_per_update: int = Field(100, ge=1)
+    time_budget_s: float | None = Field(None, gt=0)
+
+
+class RunConfig(_Table):
+    name: str = "run"
+    passes: int = Field(1, ge=1)
+    dark_frames: int = Field(4, ge=0, description="dark frames (shutter closed) taken before the first pass")
+    output_dir: str = "runs"
+    operator: str = Field("", description="who runs the bench; recorded with the safety acknowledgement")
+
+
+class StreamConfig(_Table):
+    publish_address: str = Field("tcp://127.0.0.1:0", description="ZeroMQ PUB address; port 0 picks a free port")
+    preview_hwm: int = Field(10, ge=1, description="queued messages per subscriber before previews are dropped")
+
+
+class FirmwareConfig(_Table):
+    faults: list[dict[str, Any]] = Field(default_factory=list)
+    settle_s: float = Field(0.0, ge=0)
+
+
+class SimulationConfig(_Table):
+    """The simulated optical bench (present only when the bench is simulated)."""
+
+    sample: Literal["phase_target"] = "phase_target"
+    photon_rate_per_s: float = Field(gt=0, description="incident photons per second on the detector, shutter open")
+    seed: int = 0
+    firmware: dict[Literal["modulator", "safety"], FirmwareConfig] = Field(default_factory=dict)
+
+
+class BenchConfig(_Table):
+    """A whole bench + run description (one TOML file)."""
+
+    laser: LaserConfig
+    grid: GridConfig = GridConfig()
+    masks: MaskConfig = MaskConfig()
+    camera: CameraConfig
+    response: ResponseConfig
+    modulator: DeviceConfig
+    safety: DeviceConfig
+    checks: ChecksConfig = ChecksConfig()
+    reconstruction: ReconstructionConfig = ReconstructionConfig()
+    run: RunConfig = RunConfig()
+    stream: StreamConfig = StreamConfig()
+    simulation: SimulationConfig | None = None
+
+    # where the file came from (not TOML keys)
+    _source_path: str = PrivateAttr("<memory>")
+    _source_text: str = PrivateAttr("")
+
+    @property
+    def source_path(self) -> str:
+        return self._source_path
+
+    @property
+    def source_text(self) -> str:
+        """The TOML text as read; stored verbatim in the run file."""
+        return self._source_text
+
+    @property
+    def config_dir(self) -> Path:
+        return Path(self.source_path).parent if self.source_path != "<memory>" else Path.cwd()
+
+
+def _format_loc(loc: tuple) -> str:
+    parts: list[str] = []
+    for item in loc:
+        if isinstance(item, int):
+            parts[-1:] = [f"{parts[-1]}[{item}]"] if parts else [f"[{item}]"]
+        else:
+            parts.append(str(item))
+    return ".".join(parts)
+
+
+def _problems_from(err: ValidationError) -> list[tuple[str, str]]:
+    out = []
+    for e in err.errors():
+        loc = tuple(x for x in e["loc"] if not (isinstance(x, str) and x.startswith("function-")))
+        msg = e["msg"]
+        if e["type"] == "extra_forbidden":
+            msg = "unknown key (check the spelling; see configs/demo.toml for the keys that exist)"
+        elif e["type"] == "missing":
+            msg = "required key is missing"
+        elif "input" in e and e["type"] not in ("value_error",):
+            msg = f"{msg} (got {e['input']!r})"
+        out.append((_format_loc(loc), msg.removeprefix("Value error, ")))
+    return out
+
+
+def parse_config(text: str, source: str = "<memory>") -> BenchConfig:
+    """Parse and validate TOML text. Raises ConfigError naming ``source``."""
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(source, [("", f"not valid TOML: {exc}")]) from None
+    try:
+        cfg = BenchConfig.model_validate(data)
+    except ValidationError as exc:
+        raise ConfigError(source, _problems_from(exc)) from None
+    cfg._source_path = source
+    cfg._source_text = text
+    return cfg
+
+
+def load_config(path: str | Path) -> BenchConfig:
+    """Read and validate a bench config file."""
+    p = Path(path)
+    if not p.exists():
+        raise ConfigError(str(p), [("", "file not found (give the path of a bench config, e.g. configs/demo.toml)")])
+    if p.is_dir():
+        raise ConfigError(str(p), [("", "is a folder, expected a .toml file")])
+    try:
+        text = p.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(str(p), [("", f"cannot read: {exc}")]) from None
+    return parse_config(text, str(p))
+
+
+def demo_config_text() -> str:
+    """The embedded default bench (all simulated)."""
+    return importlib.resources.files("maskrun.configs").joinpath("demo.toml").read_text(encoding="utf-8")
+
+
+def load_demo_config() -> BenchConfig:
+    return parse_config(demo_config_text(), "configs/demo.toml")

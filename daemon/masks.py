@@ -1,0 +1,30 @@
+"""Build the run's mask set from the [masks] table (or its description in a worker message)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from maskrun import reconstruct as rc
+
+
+def make_masks(family: str, count: int, shape, seed: int = 0, levels: int = 8, path: str | Path | None = None) -> np.ndarray:
+    """The (K, H, W) complex mask set. family: octanary | random_phase | quantized_phase | binary_amplitude | file."""
+    shape = tuple(int(s) for s in shape)
+    if family == "octanary":
+        return rc.octanary_masks(count, shape, seed=seed)
+    if family == "random_phase":
+        return rc.random_phase_masks(count, shape, seed=seed)
+    if family == "quantized_phase":
+        return rc.quantized_phase_masks(count, shape, levels=levels, seed=seed)
+    if family == "binary_amplitude":
+        return rc.binary_amplitude_masks(count, shape, seed=seed)
+    if family == "file":
+        if path is None:
+            raise ValueError("masks family 'file' needs a path")
+        masks = rc.load_masks(path)
+        if masks.shape != (count, *shape):
+            raise ValueError(f"{path}: masks have shape {masks.shape}, the config asks for {(count, *shape)}")
+        return masks
+    raise ValueError(f"unknown mask family {family!r}")

@@ -1,0 +1,512 @@
+"""Photon transfer analysis following EMVA Standard 1288, Release 4.0 Linear (2021).
+
+Pure analysis, no devices: ``step_statistics`` reduces the frames of one exposure
+step to the EMVA quantities as soon as they are taken (so a long series never
+holds all frames in memory), and ``analyse_photon_transfer`` fits the camera
+from the series. ``plot_photon_transfer`` draws the photon transfer and the
+linearity plots into one PNG.
+
+Quantities (EMVA 1288 R4.0 Linear notation, units in brackets):
+
+- mu_y      mean grey value of the bright frames [DN]
+- mu_y.dark mean grey value of the dark frames at the same exposure [DN]
+- sigma_y^2 temporal variance, var(y_A - y_B) / 2 from a pair of frames [DN^2]
+  (averaged over consecutive pairs when more than two frames per step)
+- K         overall system gain [DN/e-], slope of the photon transfer
+  sigma_y^2 - sigma_y.dark^2 = K (mu_y - mu_y.dark), fitted over the steps
+  from the smallest signal up to 70 % of the saturation signal
+- saturation the step where sigma_y^2 peaks; saturation capacity
+  mu_e.sat = (mu_y.sat - mu_y.dark) / K [e-]
+- dark noise sigma_d = sigma_y.dark / K [e-]; we also report the value with the
+  quantisation noise (1/12 DN^2) removed, sqrt(sigma_y.dark^2 - 1/12) / K,
+  which is the read noise of the sensor itself (EMVA 1288 model, sec. 2)
+- linearity error: straight-line fit of mu_y - mu_y.dark against mu_p (photons
+  per pixel, when known) or against the exposure time (constant light), over
+  the steps between 5 % and 95 % of the saturation signal; the relative
+  deviations delta_i = 100 (signal_i - fit_i) / fit_i [%]; we report their
+  minimum, maximum and the EMVA linearity error LE = (max - min) / 2
+- quantum efficiency eta = R / K with the responsivity R [DN/photon], the slope
+  of mu_y - mu_y.dark against mu_p over the 0-70 % range (only if mu_p known)
+
+The fit ranges (0-70 % for the photon transfer, 5-95 % for linearity) and the
+two-frame variance follow EMVA 1288 (from memory of Release 3.1 / 4.0 Linear,
+sections 6 and 8). The illumination must be spatially uniform (no sample, no
+mask; a diffuser in front of the camera) for the numbers to mean what they say.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+
+__all__ = [
+    "QUANTISATION_VARIANCE_DN2",
+    "GAIN_FIT_FRACTION",
+    "LINEARITY_RANGE",
+    "PhotonTransferError",
+    "LightTooWeak",
+    "SaturatedFromStart",
+    "TooFewSteps",
+    "StepStatistics",
+    "PhotonTransferResult",
+    "step_statistics",
+    "mean_and_temporal_variance",
+    "analyse_photon_transfer",
+    "plot_photon_transfer",
+]
+
+#: Variance of uniform rounding to whole DN, 1/12 DN^2 (EMVA 1288 R4.0 Linear, sec. 2).
+QUANTISATION_VARIANCE_DN2 = 1.0 / 12.0
+#: Photon transfer fit from the smallest signal up to this fraction of the saturation signal (EMVA: 70 %).
+GAIN_FIT_FRACTION = 0.70
+#: Linearity fit range as fractions of the saturation signal (EMVA: 5 % to 95 %).
+LINEARITY_RANGE = (0.05, 0.95)
+#: A series counts as past saturation once some later step's variance drops below this fraction of the peak.
+_PAST_PEAK_DROP = 0.8
+#: Fewest steps the photon transfer fit accepts.
+_MIN_FIT_STEPS = 3
+
+
+# ----------------------------------------------------------------------------- errors
+class PhotonTransferError(ValueError):
+    """The series cannot be analysed. ``steps`` keeps the measured statistics (nothing is lost)."""
+
+    def __init__(self, message: str, steps: Sequence["StepStatistics"] = ()):
+        self.steps = list(steps)
+        super().__init__(message)
+
+
+class LightTooWeak(PhotonTransferError):
+    """The series never saturates: the variance does not peak and fall within the exposure range."""
+
+
+class SaturatedFromStart(PhotonTransferError):
+    """The series is saturated (or nearly) from the first step."""
+
+
+class TooFewSteps(PhotonTransferError):
+    """Not enough steps in a fit range (too few exposures or an unfortunate spacing)."""
+
+
+# ----------------------------------------------------------------------------- per step
+@dataclass(frozen=True)
+class StepStatistics:
+    """EMVA statistics of one exposure step (all means over all pixels).
+
+    exposure_s: exposure used [s] (as reported by the camera).
+    photons_per_pixel: mean incident photons per pixel mu_p, or None if unknown.
+    mean_dn / mean_dark_dn: mu_y and mu_y.dark [DN].
+    variance_dn2 / variance_dark_dn2: temporal variances sigma_y^2 and sigma_y.dark^2 [DN^2].
+    clipped_fraction: fraction of bright pixels at the ADC maximum (``max_dn``), or 0 if unknown.
+    n_pixels: pixels per frame.
+    """
+
+    exposure_s: float
+    mean_dn: float
+    variance_dn2: float
+    mean_dark_dn: float
+    variance_dark_dn2: float
+    photons_per_pixel: float | None = None
+    clipped_fraction: float = 0.0
+    n_pixels: int = 0
+
+
+def mean_and_temporal_variance(frames: Sequence[np.ndarray]) -> tuple[float, float]:
+    """Mean grey value [DN] and temporal variance [DN^2] of >= 2 frames taken under the same conditions.
+
+    sigma^2 = var(y_A - y_B) / 2 (EMVA 1288 R4.0 Linear, sec. 6), averaged over disjoint pairs.
+    """
+    if len(frames) < 2:
+        raise ValueError(
+            f"need at least 2 frames per step for the temporal variance (EMVA pair A, B), got {len(frames)}"
+        )
+    shape = frames[0].shape
+    for f in frames:
+        if f.shape != shape:
+            raise ValueError(f"frames of one step differ in shape: {shape} vs {f.shape}")
+    means = [float(np.mean(f, dtype=np.float64)) for f in frames]
+    variances = []
+    for a, b in zip(frames[:-1:2], frames[1::2]):  # disjoint pairs (A, B), (C, D), ...
+        diff = a.astype(np.float64) - b.astype(np.float64)
+        variances.append(float(np.var(diff)) / 2.0)
+    return float(np.mean(means)), float(np.mean(variances))
+
+
+def step_statistics(
+    exposure_s: float,
+    bright_frames: Sequence[np.ndarray],
+    dark_frames: Sequence[np.ndarray] | tuple[float, float],
+    *,
+    photons_per_pixel: float | None = None,
+    max_dn: int | None = None,
+) -> StepStatistics:
+    """Reduce the frames of one exposure step (>= 2 bright, >= 2 dark) to EMVA statistics.
+
+    dark_frames may also be an already reduced (mean_dn, variance_dn2) tuple of floats.
+
+    sigma_y^2 = var(y_A - y_B) / 2 (EMVA 1288 R4.0 Linear, sec. 6); with more than two
+    frames the variance is averaged over disjoint pairs.
+    """
+    mean, var = mean_and_temporal_variance(list(bright_frames))
+    if isinstance(dark_frames, tuple) and len(dark_frames) == 2 and np.ndim(dark_frames[0]) == 0:
+        mean_d, var_d = float(dark_frames[0]), float(dark_frames[1])  # already reduced (mean, variance)
+    else:
+        mean_d, var_d = mean_and_temporal_variance(list(dark_frames))
+        if bright_frames[0].shape != dark_frames[0].shape:
+            raise ValueError(
+                f"bright frames {bright_frames[0].shape} and dark frames {dark_frames[0].shape} differ in shape"
+            )
+    clipped = 0.0
+    if max_dn is not None:
+        clipped = float(np.mean([np.count_nonzero(f >= max_dn) / f.size for f in bright_frames]))
+    return StepStatistics(
+        exposure_s=float(exposure_s),
+        mean_dn=mean,
+        variance_dn2=var,
+        mean_dark_dn=mean_d,
+        variance_dark_dn2=var_d,
+        photons_per_pixel=None if photons_per_pixel is None else float(photons_per_pixel),
+        clipped_fraction=clipped,
+        n_pixels=int(bright_frames[0].size),
+    )
+
+
+# ----------------------------------------------------------------------------- result
+@dataclass
+class PhotonTransferResult:
+    """Everything the photon transfer measurement found, plus the arrays for plotting.
+
+    Scalars (units in the names):
+        gain_dn_per_e: overall system gain K.
+        gain_fit_intercept_dn2: intercept of the photon transfer fit (ideally ~0).
+        gain_fit_steps: number of steps in the 0-70 % fit.
+        offset_dn: mu_y.dark at zero exposure (intercept of mu_y.dark vs exposure).
+        dark_noise_dn: sigma_y.dark at zero exposure (intercept of sigma_y.dark^2 vs exposure).
+        dark_noise_e: sigma_d = sigma_y.dark / K (EMVA R4.0 Linear definition, includes quantisation).
+        read_noise_e: sqrt(sigma_y.dark^2 - 1/12) / K, the sensor's own dark noise without
+            quantisation noise (0 if sigma_y.dark^2 < 1/12).
+        dark_current_e_per_s: slope of mu_y.dark vs exposure divided by K (nan with one exposure).
+        saturation_index: step where sigma_y^2 peaks.
+        saturation_mean_dn: mu_y at that step; saturation_signal_dn = mu_y.sat - mu_y.dark.
+        saturation_capacity_e: (mu_y.sat - mu_y.dark) / K.
+        saturation_photons_per_pixel: mu_p.sat (None if mu_p unknown).
+        responsivity_dn_per_photon, quantum_efficiency: R and eta = R / K (None if mu_p unknown).
+        linearity_error_pct: EMVA LE = (max delta - min delta) / 2.
+        linearity_error_min_pct, linearity_error_max_pct: extreme deviations from the fit.
+        linearity_axis: 'photons_per_pixel' or 'exposure_s' (x of the linearity fit).
+        max_dn: ADC maximum if known.
+    Arrays (one entry per step, in exposure order): exposure_s, photons_per_pixel (nan if unknown),
+        mean_dn, mean_dark_dn, variance_dn2, variance_dark_dn2, clipped_fraction,
+        in_gain_fit, in_linearity_fit (bool), linearity_deviation_pct (nan outside the range).
+    """
+
+    gain_dn_per_e: float
+    gain_fit_intercept_dn2: float
+    gain_fit_steps: int
+    offset_dn: float
+    dark_noise_dn: float
+    dark_noise_e: float
+    read_noise_e: float
+    dark_current_e_per_s: float
+    saturation_index: int
+    saturation_mean_dn: float
+    saturation_signal_dn: float
+    saturation_capacity_e: float
+    saturation_photons_per_pixel: float | None
+    responsivity_dn_per_photon: float | None
+    quantum_efficiency: float | None
+    linearity_error_pct: float
+    linearity_error_min_pct: float
+    linearity_error_max_pct: float
+    linearity_axis: str
+    linearity_slope: float
+    linearity_intercept_dn: float
+    n_pixels: int
+    max_dn: int | None
+    exposure_s: np.ndarray
+    photons_per_pixel: np.ndarray
+    mean_dn: np.ndarray
+    mean_dark_dn: np.ndarray
+    variance_dn2: np.ndarray
+    variance_dark_dn2: np.ndarray
+    clipped_fraction: np.ndarray
+    in_gain_fit: np.ndarray
+    in_linearity_fit: np.ndarray
+    linearity_deviation_pct: np.ndarray
+    steps: list[StepStatistics] = field(default_factory=list, repr=False)
+
+    @property
+    def signal_dn(self) -> np.ndarray:
+        """mu_y - mu_y.dark per step [DN]."""
+        return self.mean_dn - self.mean_dark_dn
+
+    @property
+    def signal_variance_dn2(self) -> np.ndarray:
+        """sigma_y^2 - sigma_y.dark^2 per step [DN^2]."""
+        return self.variance_dn2 - self.variance_dark_dn2
+
+    def summary_rows(self) -> list[tuple[str, str, str]]:
+        """(quantity, value, unit) rows for a printed table."""
+
+        def fmt(v, digits=4):
+            return "n/a" if v is None or (isinstance(v, float) and math.isnan(v)) else f"{v:.{digits}g}"
+
+        return [
+            ("overall system gain K", fmt(self.gain_dn_per_e), "DN/e-"),
+            ("inverse gain 1/K", fmt(1.0 / self.gain_dn_per_e), "e-/DN"),
+            ("dark offset", fmt(self.offset_dn), "DN"),
+            ("dark noise sigma_y.dark", fmt(self.dark_noise_dn), "DN"),
+            ("dark noise sigma_d", fmt(self.dark_noise_e), "e-"),
+            ("read noise (quantisation removed)", fmt(self.read_noise_e), "e-"),
+            ("dark current", fmt(self.dark_current_e_per_s), "e-/s"),
+            ("saturation capacity", fmt(self.saturation_capacity_e), "e-"),
+            ("saturation signal", fmt(self.saturation_signal_dn), "DN"),
+            ("quantum efficiency", fmt(self.quantum_efficiency), "1"),
+            ("linearity error LE", fmt(self.linearity_error_pct, 3), "%"),
+            ("linearity deviation min / max",
+             f"{fmt(self.linearity_error_min_pct, 3)} / {fmt(self.linearity_error_max_pct, 3)}", "%"),
+            ("steps in gain fit", str(self.gain_fit_steps), "1"),
+        ]
+
+
+# ----------------------------------------------------------------------------- analysis
+def _line_fit(x: np.ndarray, y: np.ndarray) -> tuple[float, float]:
+    """Least-squares straight line y = slope * x + intercept."""
+    slope, intercept = np.polyfit(np.asarray(x, float), np.asarray(y, float), 1)
+    return float(slope), float(intercept)
+
+
+def analyse_photon_transfer(
+    steps: Sequence[StepStatistics],
+    *,
+    max_dn: int | None = None,
+    gain_fit_fraction: float = GAIN_FIT_FRACTION,
+    linearity_range: tuple[float, float] = LINEARITY_RANGE,
+) -> PhotonTransferResult:
+    """Fit the EMVA 1288 linear camera model to a photon transfer series.
+
+    steps: one StepStatistics per exposure (any order; sorted by exposure, then photons).
+    max_dn: ADC maximum, used for the advice when the light is too weak.
+    Raises LightTooWeak, SaturatedFromStart or TooFewSteps (all PhotonTransferError, a
+    ValueError) with a message that says what to change; the error keeps ``steps``.
+    """
+    steps = list(steps)
+    if len(steps) < _MIN_FIT_STEPS + 2:
+        raise TooFewSteps(
+            f"a photon transfer series needs at least {_MIN_FIT_STEPS + 2} exposure steps from dark to past "
+            f"saturation, got {len(steps)}; EMVA 1288 recommends about 50 equally spaced steps",
+            steps,
+        )
+    steps.sort(key=lambda s: (s.exposure_s, s.photons_per_pixel or 0.0))
+    texp = np.array([s.exposure_s for s in steps], float)
+    mu_p = np.array([np.nan if s.photons_per_pixel is None else s.photons_per_pixel for s in steps], float)
+    mean = np.array([s.mean_dn for s in steps], float)
+    mean_d = np.array([s.mean_dark_dn for s in steps], float)
+    var = np.array([s.variance_dn2 for s in steps], float)
+    var_d = np.array([s.variance_dark_dn2 for s in steps], float)
+    clipped = np.array([s.clipped_fraction for s in steps], float)
+    signal = mean - mean_d
+    signal_var = var - var_d
+    n = len(steps)
+
+    # --- saturation: where the temporal variance peaks (EMVA 1288).
+    sat = int(np.argmax(var))
+    past_peak = bool(sat < n - 1 and np.min(var[sat + 1:]) < _PAST_PEAK_DROP * var[sat])
+    if not past_peak:
+        raise LightTooWeak(_advice_never_saturates(texp, signal, mean_d, max_dn), steps)
+    if sat == 0 or signal[sat] <= 0:
+        raise SaturatedFromStart(
+            f"the series is saturated from the first step (the variance peaks at the shortest exposure, "
+            f"{texp[0]:.3g} s, mean {mean[0]:.1f} DN): lower the light or the shortest exposure, e.g. start "
+            f"at {texp[0] / 20:.3g} s",
+            steps,
+        )
+    sat_signal = float(signal[sat])
+
+    # --- photon transfer fit over 0-70 % of saturation (EMVA 1288).
+    in_gain = np.zeros(n, bool)
+    in_gain[: sat + 1] = signal[: sat + 1] <= gain_fit_fraction * sat_signal
+    if in_gain.sum() < _MIN_FIT_STEPS:
+        below = int(in_gain.sum())
+        if signal[0] > gain_fit_fraction * sat_signal:
+            raise SaturatedFromStart(
+                f"the first step already gives {100 * signal[0] / sat_signal:.0f} % of the saturation signal "
+                f"(only {below} step(s) below {100 * gain_fit_fraction:.0f} %, need {_MIN_FIT_STEPS}): lower "
+                f"the light or the shortest exposure (shortest was {texp[0]:.3g} s)",
+                steps,
+            )
+        raise TooFewSteps(
+            f"only {below} step(s) lie below {100 * gain_fit_fraction:.0f} % of saturation, need "
+            f"{_MIN_FIT_STEPS}: add more exposure steps below {texp[sat] * gain_fit_fraction:.3g} s",
+            steps,
+        )
+    gain, gain_intercept = _line_fit(signal[in_gain], signal_var[in_gain])
+    if not gain > 0:
+        raise PhotonTransferError(
+            f"the photon transfer slope is not positive (K = {gain:.3g} DN/e-): the variance does not grow "
+            "with the signal; check that the light is steady and that the frames are not processed "
+            "(denoising, averaging) by the camera",
+            steps,
+        )
+
+    # --- dark: offset, dark noise, dark current (intercepts / slopes vs exposure).
+    if np.ptp(texp) > 0:
+        dark_current_dn_per_s, offset = _line_fit(texp, mean_d)
+        _, var_d0 = _line_fit(texp, var_d)
+        var_d0 = var_d0 if var_d0 > 0 else float(var_d[0])
+        dark_current = dark_current_dn_per_s / gain
+    else:
+        offset, var_d0, dark_current = float(mean_d[0]), float(var_d[0]), float("nan")
+    dark_noise_dn = math.sqrt(var_d0)
+    read_noise_e = math.sqrt(max(var_d0 - QUANTISATION_VARIANCE_DN2, 0.0)) / gain
+
+    # --- linearity over 5-95 % of saturation.
+    have_mu_p = bool(np.all(np.isfinite(mu_p)))
+    x_lin = mu_p if have_mu_p else texp
+    lo, hi = linearity_range
+    in_lin = np.zeros(n, bool)
+    in_lin[: sat + 1] = (signal[: sat + 1] >= lo * sat_signal) & (signal[: sat + 1] <= hi * sat_signal)
+    if in_lin.sum() < _MIN_FIT_STEPS:
+        raise TooFewSteps(
+            f"only {int(in_lin.sum())} step(s) lie between {100 * lo:.0f} % and {100 * hi:.0f} % of "
+            f"saturation, need {_MIN_FIT_STEPS}: use more, evenly spaced exposure steps",
+            steps,
+        )
+    lin_slope, lin_intercept = _line_fit(x_lin[in_lin], signal[in_lin])
+    deviation = np.full(n, np.nan)
+    fit_values = lin_slope * x_lin[in_lin] + lin_intercept
+    deviation[in_lin] = 100.0 * (signal[in_lin] - fit_values) / fit_values
+    dev_min, dev_max = float(np.nanmin(deviation)), float(np.nanmax(deviation))
+
+    # --- responsivity and quantum efficiency if mu_p is known.
+    responsivity = qe = sat_photons = None
+    if have_mu_p:
+        responsivity, _ = _line_fit(mu_p[in_gain], signal[in_gain])
+        qe = responsivity / gain
+        sat_photons = float(mu_p[sat])
+
+    return PhotonTransferResult(
+        gain_dn_per_e=gain,
+        gain_fit_intercept_dn2=gain_intercept,
+        gain_fit_steps=int(in_gain.sum()),
+        offset_dn=float(offset),
+        dark_noise_dn=dark_noise_dn,
+        dark_noise_e=dark_noise_dn / gain,
+        read_noise_e=read_noise_e,
+        dark_current_e_per_s=float(dark_current),
+        saturation_index=sat,
+        saturation_mean_dn=float(mean[sat]),
+        saturation_signal_dn=sat_signal,
+        saturation_capacity_e=sat_signal / gain,
+        saturation_photons_per_pixel=sat_photons,
+        responsivity_dn_per_photon=responsivity,
+        quantum_efficiency=qe,
+        linearity_error_pct=(dev_max - dev_min) / 2.0,
+        linearity_error_min_pct=dev_min,
+        linearity_error_max_pct=dev_max,
+        linearity_axis="photons_per_pixel" if have_mu_p else "exposure_s",
+        linearity_slope=lin_slope,
+        linearity_intercept_dn=lin_intercept,
+        n_pixels=int(steps[0].n_pixels),
+        max_dn=max_dn,
+        exposure_s=texp,
+        photons_per_pixel=mu_p,
+        mean_dn=mean,
+        mean_dark_dn=mean_d,
+        variance_dn2=var,
+        variance_dark_dn2=var_d,
+        clipped_fraction=clipped,
+        in_gain_fit=in_gain,
+        in_linearity_fit=in_lin,
+        linearity_deviation_pct=deviation,
+        steps=steps,
+    )
+
+
+def _advice_never_saturates(texp, signal, mean_d, max_dn) -> str:
+    """Message for a series whose variance never peaks: how long the exposure must get."""
+    longest = float(texp[-1])
+    if signal[-1] <= 0 or not np.isfinite(signal[-1]):
+        return (
+            f"light too weak: no signal above the dark level even at the longest exposure ({longest:.3g} s); "
+            "check that the shutter opens and the light source is on, then raise the light or the exposure range"
+        )
+    rate_dn_per_s = float(signal[-1] / longest) if longest > 0 else float("nan")
+    if max_dn is not None and rate_dn_per_s > 0:
+        # The ADC range bounds the saturation signal from above; 1.5x to get past the peak.
+        needed = 1.5 * (max_dn - float(mean_d[-1])) / rate_dn_per_s
+        return (
+            f"light too weak: the series never saturates (the temporal variance does not peak and fall); "
+            f"the signal reached {signal[-1]:.0f} DN of at most {max_dn - mean_d[-1]:.0f} DN at {longest:.3g} s; "
+            f"raise the exposure range to at least {needed:.3g} s, or raise the light"
+        )
+    return (
+        f"light too weak: the series never saturates (the temporal variance does not peak and fall) up to "
+        f"{longest:.3g} s (signal {signal[-1]:.0f} DN); raise the exposure range to at least {4 * longest:.3g} s, "
+        "or raise the light"
+    )
+
+
+# ----------------------------------------------------------------------------- plots
+# Okabe & Ito, "Color Universal Design (CUD): how to make figures and presentations that are
+# friendly to colorblind people" (2008): colour-blind-safe palette.
+_BLUE, _ORANGE, _GREEN, _VERMILION, _GREY = "#0072B2", "#E69F00", "#009E73", "#D55E00", "#999999"
+
+
+def plot_photon_transfer(result: PhotonTransferResult, path_png: str | Path) -> Path:
+    """Save the photon transfer and linearity plots (three panels) as a PNG; returns the path."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    path_png = Path(path_png)
+    fig = Figure(figsize=(14, 4.6), layout="constrained")
+    FigureCanvasAgg(fig)  # Agg renderer, no GUI and no global pyplot state
+    ax_ptc, ax_lin, ax_dev = fig.subplots(1, 3)
+    r = result
+    sig, svar = r.signal_dn, r.signal_variance_dn2
+    fit, sat = r.in_gain_fit, r.saturation_index
+
+    ax_ptc.plot(sig[~fit], svar[~fit], "o", color=_GREY, mfc="none", label="steps outside fit")
+    ax_ptc.plot(sig[fit], svar[fit], "o", color=_BLUE, label="steps in fit (0-70 % sat.)")
+    xs = np.linspace(0, max(sig[fit].max(), 1e-9), 50)
+    ax_ptc.plot(xs, r.gain_dn_per_e * xs + r.gain_fit_intercept_dn2, "-", color=_ORANGE,
+                label=f"fit: K = {r.gain_dn_per_e:.4g} DN/e-")
+    ax_ptc.plot([sig[sat]], [svar[sat]], "s", ms=9, mfc="none", mew=2, color=_VERMILION,
+                label=f"saturation: {r.saturation_capacity_e:.4g} e-")
+    ax_ptc.set_xlabel(r"mean signal $\mu_y - \mu_{y.dark}$ (DN)")
+    ax_ptc.set_ylabel(r"temporal variance $\sigma_y^2 - \sigma_{y.dark}^2$ (DN$^2$)")
+    ax_ptc.set_title("Photon transfer (EMVA 1288)")
+    ax_ptc.grid(True, alpha=0.3)
+    ax_ptc.legend(fontsize=8)
+
+    if r.linearity_axis == "photons_per_pixel":
+        x, xlabel = r.photons_per_pixel, r"incident photons per pixel $\mu_p$ (photons)"
+    else:
+        x, xlabel = r.exposure_s, "exposure time (s)"
+    lin = r.in_linearity_fit
+    ax_lin.plot(x[~lin], sig[~lin], "o", color=_GREY, mfc="none", label="steps outside fit")
+    ax_lin.plot(x[lin], sig[lin], "o", color=_BLUE, label="steps in fit (5-95 % sat.)")
+    xl = np.linspace(0, float(np.nanmax(x)), 50)
+    ax_lin.plot(xl, r.linearity_slope * xl + r.linearity_intercept_dn, "-", color=_ORANGE, label="linear fit")
+    ax_lin.set_xlabel(xlabel)
+    ax_lin.set_ylabel(r"mean signal $\mu_y - \mu_{y.dark}$ (DN)")
+    ax_lin.set_title("Linearity")
+    ax_lin.grid(True, alpha=0.3)
+    ax_lin.legend(fontsize=8)
+
+    ax_dev.axhline(0.0, color=_GREY, lw=1)
+    ax_dev.plot(x[lin], r.linearity_deviation_pct[lin], "o-", color=_GREEN,
+                label=f"LE = {r.linearity_error_pct:.3g} %")
+    ax_dev.set_xlabel(xlabel)
+    ax_dev.set_ylabel("deviation from linear fit (%)")
+    ax_dev.set_title("Linearity error")
+    ax_dev.grid(True, alpha=0.3)
+    ax_dev.legend(fontsize=8)
+
+    path_png.parent.mkdir(parents=True, exist_ok=True)
+    fig.savefig(path_png, dpi=100)
+    return path_png

@@ -1,0 +1,153 @@
+"""Read a run file, finished, growing, or left behind by a crash.
+
+Opens in HDF5 single-writer/multiple-reader mode, so it works while the daemon
+is still writing and after the writer was killed. Row counts of paired
+datasets (frames/frame_info, ...) are reconciled to the shorter of the two.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from pathlib import Path
+
+import h5py
+import numpy as np
+
+from .store import FORMAT_NAME, StoreError
+
+
+@dataclass
+class FrameSetIndex:
+    pass_index: int
+    set_index: int
+    rows: np.ndarray  # indices into /entry/frames, ordered by mask index
+
+
+class RunFile:
+    """Read-only view of a run file."""
+
+    def __init__(self, path: str | Path):
+        self.path = Path(path)
+        if not self.path.exists():
+            raise StoreError(f"{self.path}: no such run file")
+        try:
+            self._f = h5py.File(self.path, "r", libver="latest", swmr=True)
+        except OSError as exc:
+            raise StoreError(f"{self.path}: not a readable HDF5 run file ({exc})") from None
+        if self._f.attrs.get("format") != FORMAT_NAME or "entry" not in self._f:
+            self._f.close()
+            raise StoreError(f"{self.path}: not a maskrun run file (no 'format = {FORMAT_NAME}' attribute)")
+        self.entry = self._f["entry"]
+
+    def refresh(self) -> None:
+        """See rows the writer appended since opening."""
+        for name in ("frames", "frame_info", "darks", "dark_info", "estimates", "estimate_info", "events"):
+            self.entry[name].refresh()
+
+    def close(self) -> None:
+        self._f.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+        return False
+
+    # --- attributes ------------------------------------------------------------
+    @property
+    def attrs(self) -> dict:
+        return dict(self.entry.attrs)
+
+    @property
+    def config_toml(self) -> str:
+        return str(self.entry.attrs["config_toml"])
+
+    @property
+    def safety_acknowledgement(self) -> dict:
+        return json.loads(self.entry.attrs["safety_acknowledgement"])
+
+    @property
+    def mask_count(self) -> int:
+        return int(self.entry.attrs["mask_count"])
+
+    @property
+    def grid_shape(self) -> tuple[int, int]:
+        return tuple(int(v) for v in self.entry.attrs["grid_shape"])
+
+    # --- data ----------------------------------------------------------------------
+    def _pair_len(self, a: str, b: str) -> int:
+        return min(self.entry[a].shape[0], self.entry[b].shape[0])
+
+    @property
+    def frame_count(self) -> int:
+        return self._pair_len("frames", "frame_info")
+
+    @property
+    def dark_count(self) -> int:
+        return self._pair_len("darks", "dark_info")
+
+    @property
+    def estimate_count(self) -> int:
+        return self._pair_len("estimates", "estimate_info")
+
+    def frame_info(self) -> np.ndarray:
+        return self.entry["frame_info"][: self.frame_count]
+
+    def frame(self, i: int) -> np.ndarray:
+        if not 0 <= i < self.frame_count:
+            raise IndexError(f"frame {i} out of range (0..{self.frame_count - 1})")
+        return self.entry["frames"][i]
+
+    def frames(self, rows=None) -> np.ndarray:
+        n = self.frame_count
+        if rows is None:
+            return self.entry["frames"][:n]
+        return np.stack([self.entry["frames"][int(r)] for r in rows]) if len(rows) else np.zeros((0, *self.grid_shape))
+
+    def darks(self) -> np.ndarray:
+        return self.entry["darks"][: self.dark_count]
+
+    def dark_info(self) -> np.ndarray:
+        return self.entry["dark_info"][: self.dark_count]
+
+    def masks(self) -> np.ndarray:
+        return self.entry["masks"][...]
+
+    def estimates(self) -> np.ndarray:
+        return self.entry["estimates"][: self.estimate_count]
+
+    def estimate_info(self) -> np.ndarray:
+        return self.entry["estimate_info"][: self.estimate_count]
+
+    def truth(self) -> np.ndarray | None:
+        return self.entry["truth"][...] if "truth" in self.entry else None
+
+    def events(self) -> list[dict]:
+        ev = self.entry["events"][...]
+        return [
+            {"t_s": float(e["t_s"]), "level": e["level"].decode(), "kind": e["kind"].decode(),
+             "message": e["message"].decode("utf-8", "replace")}
+            for e in ev
+        ]
+
+    def complete_sets(self) -> list[FrameSetIndex]:
+        """Frame sets with all K masks present, in acquisition order (the last attempt of each set index)."""
+        info = self.frame_info()
+        k = self.mask_count
+        out = []
+        for s in np.unique(info["set_index"]):
+            if s < 0:
+                continue
+            rows = np.flatnonzero(info["set_index"] == s)
+            masks = info["mask_index"][rows]
+            if len(rows) == k and sorted(masks.tolist()) == list(range(k)):
+                order = rows[np.argsort(masks)]
+                out.append(FrameSetIndex(int(info["pass_index"][rows[0]]), int(s), order))
+        return out
+
+    def finished(self) -> bool:
+        """True when the log ends with a clean 'run finished'."""
+        ev = self.events()
+        return any(e["kind"] == "run_end" and e["message"].startswith("run finished") for e in ev)

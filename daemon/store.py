@@ -1,0 +1,310 @@
+"""The run file: one HDF5 file per run, valid at every moment.
+
+Layout (format ``maskrun-run`` version 1; documented in README.md):
+
+    /entry                      group, NX_class=NXentry; attributes below
+    /entry/frames               (N, H, W) camera counts as delivered, one frame per chunk
+    /entry/frame_info           (N,) compound: one row per frame (FRAME_INFO_DTYPE)
+    /entry/darks                (D, H, W) dark frames (shutter closed)
+    /entry/dark_info            (D,) compound, same fields as frame_info
+    /entry/masks                (K, H, W) complex64, the mask set in grid orientation
+    /entry/estimates            (P, H, W) complex64, sqrt(incident photons per second)
+    /entry/estimate_info        (P,) compound (ESTIMATE_INFO_DTYPE)
+    /entry/events               (E,) compound: the append-only run log (EVENT_DTYPE)
+    /entry/truth                (H, W) complex128, simulated benches only, same units as estimates
+
+Attributes of /entry (written once, before the file goes into single-writer /
+multiple-reader mode): format, format_version, run_name, created_utc,
+config_toml, safety_acknowledgement (JSON), grid_shape, mask_count,
+frame_orientation, laser_wavelength_m, camera_bit_depth.
+
+Crash safety: the file is created with the latest HDF5 format and switched to
+SWMR mode before the first frame, then flushed after every frame. Datasets grow
+by resizing, never by creating new objects, so a reader (or a reader after a
+SIGKILL) always sees a consistent file whose row counts may differ by at most
+the frame in progress; readers use the shortest of frames/frame_info.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import h5py
+import numpy as np
+
+FORMAT_NAME = "maskrun-run"
+FORMAT_VERSION = 1
+
+# Per-frame flag bits (frame_info['flags']).
+FLAG_SATURATED = 1 << 0  # saturated fraction above the limit
+FLAG_PHOTONS_LOW = 1 << 1  # photons below the minimum
+FLAG_PHOTONS_HIGH = 1 << 2  # photons above the maximum
+FLAG_RETAKEN = 1 << 3  # this frame replaced a stale, dropped or failed attempt
+FLAG_ID_GAP = 1 << 4  # the camera frame id jumped (a frame was dropped by the camera)
+FLAG_TIMEOUT_RETRIED = 1 << 5  # one or more grab timeouts before this frame
+FLAG_EXPOSURE_SHORTENED = 1 << 6  # exposure was shortened after saturation
+FLAG_AFTER_RESUME = 1 << 7  # first frame set after a resume (a gap in time precedes it)
+
+FLAG_NAMES = {
+    FLAG_SATURATED: "saturated",
+    FLAG_PHOTONS_LOW: "photons_low",
+    FLAG_PHOTONS_HIGH: "photons_high",
+    FLAG_RETAKEN: "retaken",
+    FLAG_ID_GAP: "frame_id_gap",
+    FLAG_TIMEOUT_RETRIED: "timeout_retried",
+    FLAG_EXPOSURE_SHORTENED: "exposure_shortened",
+    FLAG_AFTER_RESUME: "after_resume",
+}
+
+FRAME_INFO_DTYPE = np.dtype(
+    [
+        ("pass_index", "<i4"),  # -1 for dark frames
+        ("set_index", "<i4"),  # frame-set attempt; a pass restarted after a fault gets a new one; -1 for darks
+        ("mask_index", "<i4"),  # -1 for dark frames
+        ("frame_id", "<i8"),  # the camera's own counter
+        ("t_request_s", "<f8"),  # epoch seconds when the frame was requested
+        ("t_frame_s", "<f8"),  # epoch seconds the camera stamped on the frame
+        ("exposure_s", "<f8"),  # exposure actually used
+        ("saturated_fraction", "<f4"),
+        ("peak_dn", "<u4"),
+        ("photons", "<f8"),  # incident photons in the frame (dark-subtracted, from the response)
+        ("flags", "<u4"),
+        ("attempts", "<u2"),  # grabs it took to get this frame
+    ]
+)
+
+ESTIMATE_INFO_DTYPE = np.dtype(
+    [
+        ("pass_index", "<i4"),  # the last pass included
+        ("passes_used", "<i4"),
+        ("residual", "<f8"),  # relative data residual
+        ("error_estimate", "<f8"),  # predicted relative error from the photon count
+        ("true_error", "<f8"),  # relative error against the stored truth (NaN without truth)
+        ("iterations", "<i4"),
+        ("photons", "<f8"),
+        ("elapsed_s", "<f8"),
+        ("t_s", "<f8"),
+    ]
+)
+
+EVENT_MESSAGE_BYTES = 240
+EVENT_DTYPE = np.dtype([("t_s", "<f8"), ("level", "S8"), ("kind", "S24"), ("message", f"S{EVENT_MESSAGE_BYTES}")])
+
+
+class StoreError(OSError):
+    """The run file cannot be created, written or read."""
+
+
+@dataclass
+class RunHeader:
+    """Everything written once when the file is created."""
+
+    run_name: str
+    config_toml: str
+    safety_acknowledgement: dict
+    grid_shape: tuple[int, int]
+    masks: np.ndarray  # (K, H, W) complex
+    frame_dtype: np.dtype
+    laser_wavelength_m: float
+    camera_bit_depth: int
+    truth: np.ndarray | None = None
+    extra_attrs: dict | None = None
+
+
+def _encode(text: str, nbytes: int) -> bytes:
+    raw = text.encode("utf-8", "replace")
+    if len(raw) > nbytes:
+        raw = raw[: nbytes - 3] + b"..."
+    return raw
+
+
+class RunStore:
+    """Writer of one run file. Not thread-safe: one writer thread owns it."""
+
+    def __init__(self, path: Path, h5: h5py.File):
+        self.path = Path(path)
+        self._f = h5
+        e = h5["entry"]
+        self._frames = e["frames"]
+        self._frame_info = e["frame_info"]
+        self._darks = e["darks"]
+        self._dark_info = e["dark_info"]
+        self._estimates = e["estimates"]
+        self._estimate_info = e["estimate_info"]
+        self._events = e["events"]
+        self.frame_count = min(self._frames.shape[0], self._frame_info.shape[0])
+        self.dark_count = min(self._darks.shape[0], self._dark_info.shape[0])
+        self.estimate_count = min(self._estimates.shape[0], self._estimate_info.shape[0])
+        self.event_count = self._events.shape[0]
+        # A crash may leave one dataset a row longer than its partner; trim to agree.
+        for ds, n in (
+            (self._frames, self.frame_count),
+            (self._frame_info, self.frame_count),
+            (self._darks, self.dark_count),
+            (self._dark_info, self.dark_count),
+            (self._estimates, self.estimate_count),
+            (self._estimate_info, self.estimate_count),
+        ):
+            if ds.shape[0] != n:
+                ds.resize(n, axis=0)
+        self.frame_shape = tuple(self._frames.shape[1:])
+        self.bytes_per_frame = int(np.prod(self.frame_shape)) * self._frames.dtype.itemsize
+
+    # --- creation ------------------------------------------------------------
+    @classmethod
+    def create(cls, path: str | Path, header: RunHeader) -> RunStore:
+        """Create a new run file. Refuses to overwrite. Removes the file again if creation fails."""
+        path = Path(path)
+        if path.exists():
+            raise StoreError(f"{path}: a run file of this name exists already; choose another name or folder")
+        try:
+            path.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise StoreError(f"{path.parent}: cannot create the output folder ({exc.strerror})") from None
+        if not os.access(path.parent, os.W_OK):
+            raise StoreError(f"{path.parent}: output folder is not writable; choose another output_dir")
+        try:
+            f = h5py.File(path, "w", libver="latest")
+        except OSError as exc:
+            raise StoreError(f"{path}: cannot create the run file ({exc})") from None
+        try:
+            cls._write_layout(f, header)
+            f.swmr_mode = True
+            f.flush()
+        except Exception:
+            f.close()
+            path.unlink(missing_ok=True)
+            raise
+        return cls(path, f)
+
+    @staticmethod
+    def _write_layout(f: h5py.File, h: RunHeader) -> None:
+        rows, cols = h.grid_shape
+        masks = np.asarray(h.masks)
+        f.attrs["format"] = FORMAT_NAME
+        f.attrs["format_version"] = FORMAT_VERSION
+        e = f.create_group("entry")
+        e.attrs["NX_class"] = "NXentry"
+        e.attrs["format"] = FORMAT_NAME
+        e.attrs["format_version"] = FORMAT_VERSION
+        e.attrs["run_name"] = h.run_name
+        e.attrs["created_utc"] = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
+        e.attrs["config_toml"] = h.config_toml
+        e.attrs["safety_acknowledgement"] = json.dumps(h.safety_acknowledgement)
+        e.attrs["grid_shape"] = np.asarray(h.grid_shape, dtype=np.int64)
+        e.attrs["mask_count"] = masks.shape[0]
+        e.attrs["frame_orientation"] = "centred (zero frequency at the centre; ifftshift to reach the grid convention)"
+        e.attrs["laser_wavelength_m"] = float(h.laser_wavelength_m)
+        e.attrs["camera_bit_depth"] = int(h.camera_bit_depth)
+        e.attrs["estimate_units"] = "sqrt(incident photons per second)"
+        for k, v in (h.extra_attrs or {}).items():
+            e.attrs[k] = v
+        fd = np.dtype(h.frame_dtype)
+        e.create_dataset("frames", (0, rows, cols), maxshape=(None, rows, cols), chunks=(1, rows, cols), dtype=fd)
+        e.create_dataset("frame_info", (0,), maxshape=(None,), chunks=(256,), dtype=FRAME_INFO_DTYPE)
+        e.create_dataset("darks", (0, rows, cols), maxshape=(None, rows, cols), chunks=(1, rows, cols), dtype=fd)
+        e.create_dataset("dark_info", (0,), maxshape=(None,), chunks=(64,), dtype=FRAME_INFO_DTYPE)
+        e.create_dataset("masks", data=masks.astype(np.complex64))
+        e.create_dataset(
+            "estimates", (0, rows, cols), maxshape=(None, rows, cols), chunks=(1, rows, cols), dtype=np.complex64
+        )
+        e.create_dataset("estimate_info", (0,), maxshape=(None,), chunks=(64,), dtype=ESTIMATE_INFO_DTYPE)
+        e.create_dataset("events", (0,), maxshape=(None,), chunks=(128,), dtype=EVENT_DTYPE)
+        if h.truth is not None:
+            e.create_dataset("truth", data=np.asarray(h.truth, dtype=np.complex128))
+
+    @classmethod
+    def reopen(cls, path: str | Path) -> RunStore:
+        """Open an existing run file to append to it (resume). The file must have been closed cleanly
+        or be repaired first (see daemon.recovery)."""
+        path = Path(path)
+        try:
+            f = h5py.File(path, "a", libver="latest")
+        except OSError as exc:
+            raise StoreError(f"{path}: cannot open the run file for appending ({exc})") from None
+        if f.attrs.get("format") != FORMAT_NAME:
+            f.close()
+            raise StoreError(f"{path}: not a maskrun run file")
+        store = cls(path, f)
+        f.swmr_mode = True
+        return store
+
+    # --- appending ---------------------------------------------------------------
+    def _append(self, data_ds, info_ds, count: int, pixels: np.ndarray, info: np.void | tuple) -> int:
+        if pixels.shape != self.frame_shape:
+            raise StoreError(f"{self.path}: frame shape {pixels.shape} does not match the run's {self.frame_shape}")
+        data_ds.resize(count + 1, axis=0)
+        data_ds[count] = pixels
+        info_ds.resize(count + 1, axis=0)
+        info_ds[count] = info
+        return count
+
+    def append_frame(self, pixels: np.ndarray, info) -> int:
+        """Append one frame and its info row (a FRAME_INFO_DTYPE record or tuple). Returns its index."""
+        i = self._append(self._frames, self._frame_info, self.frame_count, pixels, info)
+        self.frame_count += 1
+        return i
+
+    def append_dark(self, pixels: np.ndarray, info) -> int:
+        i = self._append(self._darks, self._dark_info, self.dark_count, pixels, info)
+        self.dark_count += 1
+        return i
+
+    def append_estimate(self, estimate: np.ndarray, info) -> int:
+        i = self._append(self._estimates, self._estimate_info, self.estimate_count, estimate.astype(np.complex64), info)
+        self.estimate_count += 1
+        return i
+
+    def log(self, kind: str, message: str, level: str = "info", t_s: float | None = None) -> None:
+        """Append one event to the run log inside the file (flushed at once)."""
+        rec = np.array(
+            [(t_s if t_s is not None else time.time(), level.encode()[:8], kind.encode()[:24], _encode(message, EVENT_MESSAGE_BYTES))],
+            dtype=EVENT_DTYPE,
+        )
+        self._events.resize(self.event_count + 1, axis=0)
+        self._events[self.event_count] = rec[0]
+        self.event_count += 1
+        self.flush()
+
+    def flush(self) -> None:
+        self._f.flush()
+
+    def close(self) -> None:
+        if self._f.id.valid:
+            self._f.flush()
+            self._f.close()
+
+    @property
+    def closed(self) -> bool:
+        return not self._f.id.valid
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+        return False
+
+
+def frame_info_record(**fields) -> np.void:
+    """A FRAME_INFO_DTYPE record; unspecified fields are zero."""
+    rec = np.zeros((), dtype=FRAME_INFO_DTYPE)
+    for k, v in fields.items():
+        rec[k] = v
+    return rec
+
+
+def estimate_info_record(**fields) -> np.void:
+    rec = np.zeros((), dtype=ESTIMATE_INFO_DTYPE)
+    rec["true_error"] = np.nan
+    for k, v in fields.items():
+        rec[k] = v
+    return rec
+
+
+def flag_names(flags: int) -> list[str]:
+    return [name for bit, name in FLAG_NAMES.items() if flags & bit]

@@ -1,0 +1,81 @@
+"""maskrun.reconstruct - multi-mask phase retrieval: right, fast, incremental.
+
+Pure numerics (numpy, scipy): no devices, no I/O except ``load_masks``.
+
+Model
+-----
+The camera records y_k = |F(m_k * x)|^2, k = 0..K-1 (``forward``): x is the
+complex field leaving the sample on the reconstruction grid (units:
+sqrt(photons)), m_k the known masks (K, H, W), F the unitary 2-D DFT (numpy
+``norm="ortho"``, zero frequency at [0, 0], no fftshift). Intensities are
+expected photon counts. Near-field setups propagate with
+``angular_spectrum`` (physical units, warns when the grid aliases).
+
+Which solver when
+-----------------
+``solve(y, masks)`` with the default ``method="auto"`` is right for almost
+everything; it runs ``"hybrid"``:
+
+* ``"hybrid"`` (default): RAAR for 25 iterations, then error reduction.
+  Fastest to 1e-6 and to 1e-10 on noiseless K = 8 octanary data (see
+  bench/recon_bench.py), and converges to the amplitude least-squares point
+  on noisy data, which is within a few per cent of the Cramér-Rao bound at
+  high counts.
+* ``"er"``: error reduction alone. Cheapest iteration (2K FFTs), monotone;
+  best for polishing an estimate that is already close (the incremental
+  engine uses it between frame sets of a static sample).
+* ``"raar"``: RAAR alone (beta = 0.9). Use with few masks (K <= 4), with
+  support / non-negativity constraints, or when ER stagnates.
+* ``"wf"``: Wirtinger flow with spectral initialization, the published
+  reference algorithm; ML for Gaussian intensity noise
+  (``noise_model="gaussian"`` selects it). Needs ~10x more iterations.
+* ``"poisson"``: Poisson maximum likelihood by L-BFGS, started from ER
+  (``noise_model="poisson"`` selects it). Use for shot-noise-limited data
+  when the last factor of precision matters: its MSE approaches the
+  Poisson Cramér-Rao bound (``poisson_crb``). Runs in float64; dearer per
+  iteration.
+
+Live reconstruction: ``IncrementalEngine(masks, mode="accumulate" | "follow")``
+and ``engine.update(frame_set)`` once per frame set (bounded work, warm
+start, shot-noise error estimate in every ``EngineUpdate``).
+
+Precision a dose allows: ``shot_noise_relative_error(pixels, photons)`` (any
+size), ``poisson_crb(x, masks, photon_scale)`` and ``relative_error_bound``
+(exact bound on small grids, <= 32x32).
+
+Mask families: ``octanary_masks`` (coded-diffraction plates),
+``random_phase_masks`` (phase SLM), ``quantized_phase_masks`` (N-level SLM
+with a lookup table), ``binary_amplitude_masks`` (DMD), ``load_masks``
+(.npy / .npz).
+
+Precision and speed: solvers work in complex64 by default in the engine
+(complex128 on request; ``solve`` defaults to complex128) with preallocated
+(K, H, W) buffers and batched FFTs; the FFT backend (numpy.fft or
+scipy.fft with workers) is measured per shape and chosen (``fft`` module).
+
+Bad input
+---------
+Shape mismatches, NaN/inf intensities or masks, all-zero frame sets, masks
+that are zero everywhere, unknown options: ``ReconstructionInputError``
+(a ValueError) with a message saying what to do. Negative intensities
+(normal after dark subtraction) are clamped to 0 silently: this is the
+documented behaviour. K = 1: ``NotUniquelySolvableWarning`` (it still runs).
+Pixels dark in every mask: ``UnilluminatedPixelsWarning`` and the estimate
+is 0 there.
+"""
+from .bounds import CRBResult, poisson_crb, relative_error_bound, shot_noise_relative_error
+from .incremental import EngineUpdate, IncrementalEngine
+from .masks import (binary_amplitude_masks, load_masks, mask_weight, octanary_masks, quantized_phase_masks,
+                    random_phase_masks)
+from .metrics import align_global_phase, amplitude_residual, relative_error
+from .propagation import AliasingWarning, angular_spectrum, angular_spectrum_max_distance_m, forward
+from .solvers import METHODS, SolveResult, solve
+from .validation import NotUniquelySolvableWarning, ReconstructionInputError, UnilluminatedPixelsWarning
+
+__all__ = [
+    "octanary_masks", "random_phase_masks", "quantized_phase_masks", "binary_amplitude_masks", "load_masks",
+    "mask_weight", "forward", "angular_spectrum", "angular_spectrum_max_distance_m", "AliasingWarning",
+    "solve", "SolveResult", "METHODS", "relative_error", "align_global_phase", "amplitude_residual",
+    "IncrementalEngine", "EngineUpdate", "shot_noise_relative_error", "poisson_crb", "relative_error_bound",
+    "CRBResult", "ReconstructionInputError", "NotUniquelySolvableWarning", "UnilluminatedPixelsWarning",
+]

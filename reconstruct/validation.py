@@ -1,0 +1,162 @@
+"""Input checks for the reconstruction library.
+
+Every public entry point passes its arrays through these helpers so that bad
+input produces a typed error naming the problem and the fix, never a silent
+wrong answer.
+
+Policy (also stated in the package docstring):
+
+* Masks must be a (K, H, W) array (or (H, W) for one mask), finite, and not
+  zero everywhere. A pixel that no mask illuminates can never be recovered;
+  this is allowed (it is how a support stop looks) but is reported by a
+  warning and the estimate is set to zero there.
+* Intensities must match the mask shape and be finite. Negative values are
+  normal after dark-frame subtraction: they are clamped to 0 (documented
+  behaviour, no warning). A frame set that is zero everywhere is an error.
+* K = 1 is not uniquely solvable (twin image / shift ambiguities): a
+  ``NotUniquelySolvableWarning`` is issued, and the solver still runs.
+"""
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+
+__all__ = [
+    "ReconstructionInputError",
+    "NotUniquelySolvableWarning",
+    "UnilluminatedPixelsWarning",
+    "check_masks",
+    "check_intensities",
+    "check_object",
+    "check_dtype",
+]
+
+
+class ReconstructionInputError(ValueError):
+    """Bad input to the reconstruction library (shape, values, dtype).
+
+    The message says what was wrong and what to do about it.
+    """
+
+
+class NotUniquelySolvableWarning(UserWarning):
+    """The measurement cannot determine the object uniquely (e.g. K = 1)."""
+
+
+class UnilluminatedPixelsWarning(UserWarning):
+    """Some object pixels have zero weight in every mask and cannot be recovered."""
+
+
+_ALLOWED_COMPLEX = (np.complex64, np.complex128)
+
+
+def check_dtype(dtype) -> np.dtype:
+    """Return the working complex dtype (complex64 or complex128)."""
+    dt = np.dtype(dtype)
+    if dt not in [np.dtype(d) for d in _ALLOWED_COMPLEX]:
+        raise ReconstructionInputError(
+            f"dtype {dt} is not supported: use numpy.complex64 (fast default) "
+            "or numpy.complex128 (for errors below ~1e-6)."
+        )
+    return dt
+
+
+def check_masks(masks, *, warn_k1: bool = True) -> np.ndarray:
+    """Validate a mask family; return it as a (K, H, W) complex array.
+
+    A single (H, W) mask is promoted to K = 1 (and warned about).
+    Raises ReconstructionInputError for wrong rank, non-finite entries, or a
+    family that is zero everywhere.
+    """
+    m = np.asarray(masks)
+    if m.ndim == 2:
+        m = m[None]
+    if m.ndim != 3:
+        raise ReconstructionInputError(
+            f"masks must have shape (K, H, W) (or (H, W) for one mask); got shape {m.shape}."
+        )
+    if min(m.shape) < 1:
+        raise ReconstructionInputError(f"masks shape {m.shape} is empty; need K >= 1, H >= 1, W >= 1.")
+    if not np.issubdtype(m.dtype, np.number) or m.dtype == bool:
+        m = m.astype(np.complex128) if m.dtype == bool else m
+        if not np.issubdtype(m.dtype, np.number):
+            raise ReconstructionInputError(f"masks must be numeric; got dtype {m.dtype}.")
+    if not np.iscomplexobj(m):
+        m = m.astype(np.complex128 if m.dtype == np.float64 else np.complex64)
+    if not np.all(np.isfinite(m)):
+        raise ReconstructionInputError("masks contain NaN or infinite entries: fix the mask file or generator.")
+    weight = np.sum(np.abs(m) ** 2, axis=0)
+    if not np.any(weight > 0):
+        raise ReconstructionInputError(
+            "masks are zero everywhere: no light reaches the camera, nothing can be reconstructed. "
+            "Check the mask file (wrong scaling or an all-off DMD pattern?)."
+        )
+    dark = int(np.count_nonzero(weight == 0))
+    if dark:
+        warnings.warn(
+            f"{dark} of {weight.size} object pixels are dark in every mask and cannot be recovered; "
+            "the estimate is set to 0 there.",
+            UnilluminatedPixelsWarning,
+            stacklevel=3,
+        )
+    if warn_k1 and m.shape[0] == 1:
+        warnings.warn(
+            "K = 1 mask: phase retrieval from a single coded pattern is not uniquely solvable "
+            "(twin-image and shift ambiguities); use K >= 4 (K = 6-8 octanary masks recover generic objects).",
+            NotUniquelySolvableWarning,
+            stacklevel=3,
+        )
+    return m
+
+
+def check_intensities(intensities, mask_shape: tuple[int, int, int], *, dtype=np.float64) -> np.ndarray:
+    """Validate a frame set against the mask shape; return a clamped real copy.
+
+    Negative values (normal after dark subtraction) are clamped to 0.
+    Raises ReconstructionInputError on shape mismatch, NaN/inf values or an
+    all-zero frame set.
+    """
+    y = np.asarray(intensities)
+    K, H, W = mask_shape
+    if y.ndim == 2 and K == 1:
+        y = y[None]
+    if y.shape != (K, H, W):
+        raise ReconstructionInputError(
+            f"intensities shape {y.shape} does not match masks shape {(K, H, W)}: "
+            "supply one frame per mask, in mask order, cropped to the reconstruction grid."
+        )
+    if np.iscomplexobj(y):
+        raise ReconstructionInputError("intensities must be real photon counts; got a complex array.")
+    if not np.issubdtype(y.dtype, np.number):
+        raise ReconstructionInputError(f"intensities must be numeric; got dtype {y.dtype}.")
+    finite = np.isfinite(y)
+    if not finite.all():
+        bad = np.argwhere(~finite)
+        frames = sorted(set(int(b[0]) for b in bad))
+        raise ReconstructionInputError(
+            f"intensities contain {bad.shape[0]} NaN or infinite values (frames {frames[:10]}): "
+            "drop or re-take these frames; saturated or corrupt frames must not be reconstructed."
+        )
+    out = np.array(y, dtype=dtype, copy=True)
+    np.maximum(out, 0, out=out)
+    if not np.any(out > 0):
+        raise ReconstructionInputError(
+            "the frame set is zero everywhere (after clamping negatives): no signal. "
+            "Check the shutter, the exposure and the dark subtraction."
+        )
+    return out
+
+
+def check_object(x, shape: tuple[int, int] | None = None, *, name: str = "x") -> np.ndarray:
+    """Validate an object/estimate array (H, W), finite; return as a complex array."""
+    a = np.asarray(x)
+    if a.ndim != 2:
+        raise ReconstructionInputError(f"{name} must be a 2-D (H, W) array; got shape {a.shape}.")
+    if shape is not None and a.shape != tuple(shape):
+        raise ReconstructionInputError(f"{name} shape {a.shape} does not match the mask grid {tuple(shape)}.")
+    if not np.all(np.isfinite(a)):
+        raise ReconstructionInputError(f"{name} contains NaN or infinite values.")
+    if not np.iscomplexobj(a):
+        a = a.astype(np.complex128)
+    return a

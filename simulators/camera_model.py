@@ -1,0 +1,213 @@
+"""Linear camera noise model (EMVA Standard 1288, Release 4.0 Linear, 2021).
+
+The model turns the number of photons that fall on each pixel during one
+exposure into the digital numbers (DN) a camera would deliver:
+
+1. photons -> photo-electrons: Poisson with mean ``quantum_efficiency * photons``;
+2. plus dark electrons: Poisson with mean ``dark_current_e_per_s * exposure_s``
+   (hot pixels use ``hot_pixel_dark_current_e_per_s`` instead);
+3. the well holds at most ``full_well_e`` electrons (clipped);
+4. plus read noise: Gaussian, standard deviation ``read_noise_e`` electrons;
+5. times the overall system gain ``gain_dn_per_e`` (EMVA's K), plus ``offset_dn``;
+6. rounded to whole DN (this adds the EMVA quantisation noise of 1/12 DN^2)
+   and clipped to ``[0, max_dn]`` with ``max_dn = 2**bit_depth - 1``.
+
+Hence, before clipping, the EMVA linear relations hold (EMVA 1288 R4.0 Linear,
+section 2, "Mathematical model"):
+
+    mu_y      = mu_y.dark + K * eta * mu_p
+    sigma_y^2 = K^2 * (sigma_d^2 + mu_e) + sigma_q^2,   sigma_q^2 = 1/12 DN^2
+    sigma_d^2 = read_noise_e^2 + dark_current_e_per_s * exposure_s
+
+Sums of independent Poisson variables are Poisson, so steps 1 and 2 are drawn
+as one Poisson variable per pixel.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = ["CameraNoiseModel"]
+
+
+@dataclass
+class CameraNoiseModel:
+    """Linear camera model (EMVA 1288 Release 4.0 Linear): photons -> electrons (QE, Poisson),
+    + dark current (Poisson), + read noise (Gaussian, electrons), x gain (DN/e-), + offset,
+    quantized, clipped at full well and at the ADC max.
+
+    Fields (units in the names):
+        quantum_efficiency: fraction of incident photons converted to electrons, 0 < eta <= 1.
+        gain_dn_per_e: overall system gain K, DN per electron, > 0.
+        read_noise_e: read noise standard deviation, electrons, >= 0.
+        dark_current_e_per_s: mean dark electrons per second per pixel, >= 0.
+        offset_dn: dark offset (black level) in DN, 0 <= offset < max_dn.
+        bit_depth: ADC bits, 1..16; frames are uint8 for <= 8 bits else uint16.
+        full_well_e: electrons one pixel can hold, > 0.
+        hot_pixel_fraction: fraction of pixels with a high dark current, 0..1.
+        hot_pixel_dark_current_e_per_s: dark current of those hot pixels, >= 0.
+    """
+
+    quantum_efficiency: float = 0.6
+    gain_dn_per_e: float = 0.25
+    read_noise_e: float = 3.0
+    dark_current_e_per_s: float = 5.0
+    offset_dn: float = 100.0
+    bit_depth: int = 12
+    full_well_e: float = 15000.0
+    hot_pixel_fraction: float = 0.0
+    hot_pixel_dark_current_e_per_s: float = 2000.0
+
+    def __post_init__(self) -> None:
+        self.validate()
+
+    # ------------------------------------------------------------------ checks
+    def validate(self) -> None:
+        """Raise ValueError naming the first field that is out of range."""
+
+        def finite(name: str) -> float:
+            value = getattr(self, name)
+            try:
+                value = float(value)
+            except (TypeError, ValueError):
+                raise ValueError(f"{name} must be a number, got {value!r}") from None
+            if not math.isfinite(value):
+                raise ValueError(f"{name} must be finite, got {value!r}")
+            return value
+
+        qe = finite("quantum_efficiency")
+        if not 0.0 < qe <= 1.0:
+            raise ValueError(
+                f"quantum_efficiency must be in (0, 1] (a fraction of photons), got {qe}"
+            )
+        if finite("gain_dn_per_e") <= 0.0:
+            raise ValueError(f"gain_dn_per_e must be > 0 DN per electron, got {self.gain_dn_per_e}")
+        if finite("read_noise_e") < 0.0:
+            raise ValueError(f"read_noise_e must be >= 0 electrons, got {self.read_noise_e}")
+        if finite("dark_current_e_per_s") < 0.0:
+            raise ValueError(
+                f"dark_current_e_per_s must be >= 0 electrons per second, got {self.dark_current_e_per_s}"
+            )
+        if isinstance(self.bit_depth, bool) or not isinstance(self.bit_depth, (int, np.integer)):
+            raise ValueError(f"bit_depth must be an integer number of bits, got {self.bit_depth!r}")
+        if not 1 <= int(self.bit_depth) <= 16:
+            raise ValueError(f"bit_depth must be between 1 and 16 bits, got {self.bit_depth}")
+        offset = finite("offset_dn")
+        if not 0.0 <= offset < self.max_dn:
+            raise ValueError(
+                f"offset_dn must be in [0, {self.max_dn}) DN for a {self.bit_depth}-bit ADC, got {offset}"
+            )
+        if finite("full_well_e") <= 0.0:
+            raise ValueError(f"full_well_e must be > 0 electrons, got {self.full_well_e}")
+        frac = finite("hot_pixel_fraction")
+        if not 0.0 <= frac <= 1.0:
+            raise ValueError(f"hot_pixel_fraction must be in [0, 1], got {frac}")
+        if finite("hot_pixel_dark_current_e_per_s") < 0.0:
+            raise ValueError(
+                "hot_pixel_dark_current_e_per_s must be >= 0 electrons per second, "
+                f"got {self.hot_pixel_dark_current_e_per_s}"
+            )
+
+    # -------------------------------------------------------------- properties
+    @property
+    def max_dn(self) -> int:
+        """Largest value the ADC delivers (clipped pixels sit here), 2**bit_depth - 1."""
+        return (1 << int(self.bit_depth)) - 1
+
+    @property
+    def dtype(self) -> np.dtype:
+        """uint8 for bit depths up to 8, else uint16."""
+        return np.dtype(np.uint8) if self.bit_depth <= 8 else np.dtype(np.uint16)
+
+    @property
+    def saturation_electrons(self) -> float:
+        """Electrons at which the output saturates: the full well, or the ADC maximum if lower."""
+        adc_limit_e = (self.max_dn - self.offset_dn) / self.gain_dn_per_e
+        return float(min(self.full_well_e, adc_limit_e))
+
+    def dark_noise_e(self, exposure_s: float) -> float:
+        """Temporal dark noise sigma_d in electrons: sqrt(read^2 + dark_current * t) (no hot pixels)."""
+        return math.sqrt(self.read_noise_e**2 + self.dark_current_e_per_s * exposure_s)
+
+    def mean_dn(self, photons: float | np.ndarray, exposure_s: float) -> np.ndarray:
+        """Expected output in DN before clipping: offset + K * (eta * mu_p + dark_current * t)."""
+        electrons = self.quantum_efficiency * np.asarray(photons, dtype=float)
+        electrons = electrons + self.dark_current_e_per_s * exposure_s
+        return self.offset_dn + self.gain_dn_per_e * electrons
+
+    # ------------------------------------------------------------------ render
+    def hot_pixel_mask(self, shape: tuple[int, ...], seed: int | None) -> np.ndarray:
+        """Boolean mask with exactly round(hot_pixel_fraction * n_pixels) True entries.
+
+        Deterministic for a given ``seed`` and ``shape``: a camera keeps its hot pixels.
+        """
+        shape = tuple(int(s) for s in shape)
+        n = int(np.prod(shape)) if shape else 1
+        mask = np.zeros(n, dtype=bool)
+        count = int(round(self.hot_pixel_fraction * n))
+        if count > 0:
+            rng = np.random.default_rng(seed)
+            mask[rng.choice(n, size=count, replace=False)] = True
+        return mask.reshape(shape)
+
+    def render(
+        self,
+        photons: np.ndarray,
+        exposure_s: float,
+        rng: np.random.Generator,
+        hot_pixels: np.ndarray | None = None,
+        out: np.ndarray | None = None,
+    ) -> np.ndarray:
+        """Render one frame in DN.
+
+        photons: float array of INCIDENT photons per pixel during the exposure (>= 0).
+        exposure_s: exposure time in seconds (>= 0); sets the dark electrons.
+        rng: numpy Generator (seed it for reproducible frames).
+        hot_pixels: optional boolean mask of photons' shape (see ``hot_pixel_mask``).
+        out: optional preallocated array of photons' shape and ``self.dtype`` to write into.
+        Returns the frame (``out`` if given) as uint16, or uint8 when bit_depth <= 8.
+        """
+        photons = np.asarray(photons)
+        if photons.dtype.kind not in "fiu":
+            raise ValueError(f"photons must be a real array, got dtype {photons.dtype}")
+        exposure_s = float(exposure_s)
+        if not math.isfinite(exposure_s) or exposure_s < 0.0:
+            raise ValueError(f"exposure_s must be a finite time >= 0 seconds, got {exposure_s}")
+        if photons.size and not (np.isfinite(photons).all() and photons.min() >= 0):
+            raise ValueError(
+                "photons must be finite and >= 0 (incident photons per pixel); "
+                "check the illumination model for negative or NaN intensities"
+            )
+        if out is not None:
+            if out.shape != photons.shape or out.dtype != self.dtype:
+                raise ValueError(
+                    f"out must have shape {photons.shape} and dtype {self.dtype}, "
+                    f"got shape {out.shape} dtype {out.dtype}"
+                )
+        if hot_pixels is not None and hot_pixels.shape != photons.shape:
+            raise ValueError(
+                f"hot_pixels mask shape {hot_pixels.shape} does not match photons shape {photons.shape}"
+            )
+
+        # Mean electrons per pixel (signal + dark), float64 so the Poisson draw is exact.
+        lam = np.multiply(photons, self.quantum_efficiency, dtype=np.float64)
+        lam += self.dark_current_e_per_s * exposure_s
+        if hot_pixels is not None and self.hot_pixel_dark_current_e_per_s != self.dark_current_e_per_s:
+            lam[hot_pixels] += (self.hot_pixel_dark_current_e_per_s - self.dark_current_e_per_s) * exposure_s
+        electrons = rng.poisson(lam).astype(np.float32)
+        np.minimum(electrons, np.float32(self.full_well_e), out=electrons)
+        if self.read_noise_e > 0.0:
+            noise = rng.standard_normal(size=photons.shape, dtype=np.float32)
+            noise *= np.float32(self.read_noise_e)
+            electrons += noise
+        electrons *= np.float32(self.gain_dn_per_e)
+        electrons += np.float32(self.offset_dn)
+        np.rint(electrons, out=electrons)
+        np.clip(electrons, 0.0, float(self.max_dn), out=electrons)
+        if out is None:
+            return electrons.astype(self.dtype)
+        np.copyto(out, electrons, casting="unsafe")
+        return out

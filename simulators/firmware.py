@@ -1,0 +1,440 @@
+"""Firmware simulators speaking a line protocol on real pseudo-terminals.
+
+``start_firmware("modulator" | "safety", optics)`` opens a pseudo-terminal
+pair, puts it in raw mode, and serves the device's protocol from a daemon
+thread on the controller side. Drivers open the terminal side through a
+STABLE path (a symlink in a private temporary folder), so an unplug/replug
+(which makes a new pseudo-terminal) re-points the symlink and a driver
+reconnects by reopening the same path, as with a udev name for a USB adapter.
+
+Protocol (our own): plain ASCII lines ending in ``\\n`` (a trailing ``\\r`` is
+ignored). Every command gets exactly one reply line; errors are
+``ERR <reason>``.
+
+Modulator controller (masks are stored in the controller; the host selects them):
+
+    ID?             -> ID sim-modulator 1.0
+    COUNT <K>       -> OK COUNT <K>        (ERR if K < 1 or more than the stored masks)
+    COUNT?          -> COUNT <K>
+    SHOW <k>        -> OK SHOW <k>         (sets optics.shown_mask = k; ERR if out of range)
+    READY?          -> READY 1 | READY 0   (1 once settle_s has passed since the last SHOW)
+    TRIGOUT <0|1>   -> OK TRIGOUT <0|1>    (pulse the trigger line when a mask has settled; on at start)
+
+Safety box (interlock chain and beam shutter):
+
+    ID?             -> ID sim-safety 1.0
+    INTERLOCK?      -> INTERLOCK CLOSED | INTERLOCK OPEN
+    SHUTTER?        -> SHUTTER OPEN | SHUTTER CLOSED
+    SHUTTER OPEN    -> OK SHUTTER OPEN     (ERR interlock open, if it is; takes settle_s)
+    SHUTTER CLOSE   -> OK SHUTTER CLOSED   (always accepted)
+
+The safety box is fail-safe: if the interlock opens while the shutter is
+open it closes the shutter by itself at once (hardware interlock), and when
+its host link is lost (unplug, stop) it closes the shutter too.
+
+Faults (``FirmwareFault`` or plain dicts), counted over command lines received
+since the start (1 = first command):
+
+    no_reply  at_command n, count c: commands n .. n+c-1 get no reply (they still act)
+    garbled   at_command n, count c: their replies arrive with every byte's high bit set
+              (like a baud-rate mismatch) but still end in \\n
+    unplug    at_command n, duration_s d: the device vanishes before acting on command n
+              (pseudo-terminal closed, symlink removed), then comes back after d seconds
+"""
+
+from __future__ import annotations
+
+import errno
+import fcntl
+import os
+import select
+import shutil
+import tempfile
+import threading
+import time
+import tty
+from typing import Iterable, Literal
+
+from pydantic import BaseModel, ConfigDict, Field
+
+__all__ = ["FirmwareFault", "FirmwareHandle", "start_firmware", "FIRMWARE_KINDS"]
+
+FIRMWARE_KINDS = ("modulator", "safety")
+
+
+class FirmwareFault(BaseModel):
+    """One injected firmware fault (see the module docstring)."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    kind: Literal["no_reply", "garbled", "unplug"]
+    at_command: int = Field(ge=1, description="1-based index of the command line that triggers the fault")
+    count: int = Field(default=1, ge=1, description="how many consecutive commands are affected (no_reply, garbled)")
+    duration_s: float = Field(default=1.0, ge=0.0, description="how long the device stays unplugged (unplug)")
+
+
+class _Protocol:
+    """Command interpreter of one device kind. ``handle(line) -> reply``; ``tick(now)`` runs timers."""
+
+    ident = "ID sim-device 1.0"
+
+    def __init__(self, optics, settle_s: float):
+        self.optics = optics
+        self.settle_s = float(settle_s)
+
+    def handle(self, line: str) -> str:
+        words = line.split()
+        if not words:
+            return "ERR empty command"
+        if line == "ID?":
+            return self.ident
+        return self.command(words)
+
+    def command(self, words: list[str]) -> str:  # pragma: no cover - overridden
+        return f"ERR unknown command {words[0]}"
+
+    def next_deadline(self) -> float | None:
+        return None
+
+    def tick(self, now: float) -> None:
+        pass
+
+    def link_lost(self) -> None:
+        pass
+
+    def close(self) -> None:
+        pass
+
+
+class _ModulatorProtocol(_Protocol):
+    ident = "ID sim-modulator 1.0"
+
+    def __init__(self, optics, settle_s):
+        super().__init__(optics, settle_s)
+        self.count = optics.mask_count
+        self.shown_at = -float("inf")
+        self.trigger_out = True
+        self.trigger_due: float | None = None
+
+    def command(self, words):
+        cmd, args = words[0], words[1:]
+        if cmd == "COUNT?" and not args:
+            return f"COUNT {self.count}"
+        if cmd == "COUNT" and len(args) == 1:
+            try:
+                k = int(args[0])
+            except ValueError:
+                return f"ERR count must be a whole number, got {args[0]}"
+            stored = self.optics.mask_count
+            if not 1 <= k <= stored:
+                return f"ERR count {k} outside 1..{stored} (masks stored in the controller)"
+            self.count = k
+            return f"OK COUNT {k}"
+        if cmd == "SHOW" and len(args) == 1:
+            try:
+                k = int(args[0])
+            except ValueError:
+                return f"ERR mask index must be a whole number, got {args[0]}"
+            if not 0 <= k < self.count:
+                return f"ERR mask {k} outside 0..{self.count - 1}"
+            self.optics.shown_mask = k
+            self.shown_at = time.monotonic()
+            if self.trigger_out:
+                self.trigger_due = self.shown_at + self.settle_s
+            return f"OK SHOW {k}"
+        if cmd == "READY?" and not args:
+            return "READY 1" if time.monotonic() - self.shown_at >= self.settle_s else "READY 0"
+        if cmd == "TRIGOUT" and len(args) == 1 and args[0] in ("0", "1"):
+            self.trigger_out = args[0] == "1"
+            if not self.trigger_out:
+                self.trigger_due = None
+            return f"OK TRIGOUT {args[0]}"
+        return f"ERR unknown command {' '.join(words)}"
+
+    def next_deadline(self):
+        return self.trigger_due
+
+    def tick(self, now):
+        if self.trigger_due is not None and now >= self.trigger_due:
+            self.trigger_due = None
+            self.optics.fire_trigger()
+
+
+class _SafetyProtocol(_Protocol):
+    ident = "ID sim-safety 1.0"
+
+    def __init__(self, optics, settle_s):
+        super().__init__(optics, settle_s)
+        self.trips = 0
+        self._unsubscribe = optics.subscribe(self._on_optics_change)
+
+    def _on_optics_change(self, name, value):
+        # Hardware interlock: opening the chain closes the shutter at once.
+        if name == "interlock_closed" and not value and self.optics.shutter_open:
+            self.optics.shutter_open = False
+            self.trips += 1
+
+    def command(self, words):
+        line = " ".join(words)
+        if line == "INTERLOCK?":
+            return "INTERLOCK CLOSED" if self.optics.interlock_closed else "INTERLOCK OPEN"
+        if line == "SHUTTER?":
+            return "SHUTTER OPEN" if self.optics.shutter_open else "SHUTTER CLOSED"
+        if line == "SHUTTER OPEN":
+            if not self.optics.interlock_closed:
+                return "ERR interlock open"
+            if self.settle_s > 0:
+                time.sleep(self.settle_s)
+            if not self.optics.interlock_closed:  # opened while the shutter moved
+                return "ERR interlock open"
+            self.optics.shutter_open = True
+            if not self.optics.interlock_closed:  # opened in the same instant: the hardware wins
+                self.optics.shutter_open = False
+                return "ERR interlock open"
+            return "OK SHUTTER OPEN"
+        if line == "SHUTTER CLOSE":
+            self.optics.shutter_open = False
+            return "OK SHUTTER CLOSED"
+        return f"ERR unknown command {line}"
+
+    def link_lost(self):
+        self.optics.shutter_open = False
+
+    def close(self):
+        self.optics.shutter_open = False
+        self._unsubscribe()
+
+
+_PROTOCOLS = {"modulator": _ModulatorProtocol, "safety": _SafetyProtocol}
+
+
+def _garble(reply: bytes) -> bytes:
+    return bytes(b | 0x80 for b in reply)
+
+
+class FirmwareHandle:
+    """A running firmware simulator.
+
+    port: stable path (symlink) to open with a serial driver.
+    commands_seen: command lines received so far.
+    unplug(): the device vanishes (pty closed, symlink removed); replug() brings it back
+    on a new pty behind the same path. stop(): end the thread and remove the folder.
+    """
+
+    def __init__(self, kind: str, optics, faults: Iterable = (), settle_s: float = 0.0, name: str | None = None):
+        if kind not in _PROTOCOLS:
+            raise ValueError(f"unknown firmware kind {kind!r}; choose one of {', '.join(FIRMWARE_KINDS)}")
+        self.kind = kind
+        self.name = name or kind
+        self.faults = [
+            f if isinstance(f, FirmwareFault)
+            else FirmwareFault.model_validate(f.model_dump() if isinstance(f, BaseModel) else dict(f))
+            for f in faults
+        ]
+        self._protocol = _PROTOCOLS[kind](optics, settle_s)
+        self._dir = tempfile.mkdtemp(prefix=f"maskrun-{self.name}-")
+        self.port = os.path.join(self._dir, self.name)
+        self._lock = threading.Lock()
+        self._commands_seen = 0
+        self._master: int | None = None
+        self._slave: int | None = None
+        self._slave_path: str | None = None
+        self._replug_at: float | None = None
+        self._requests: list[tuple[str, threading.Event]] = []
+        self._wake_r, self._wake_w = os.pipe()
+        os.set_blocking(self._wake_r, False)
+        self._stopping = False
+        self._buffer = b""
+        self._plug()
+        self._thread = threading.Thread(target=self._run, name=f"firmware-{self.name}", daemon=True)
+        self._thread.start()
+
+    # ----------------------------------------------------------- public
+    @property
+    def commands_seen(self) -> int:
+        with self._lock:
+            return self._commands_seen
+
+    @property
+    def plugged(self) -> bool:
+        return self._master is not None
+
+    @property
+    def device_path(self) -> str | None:
+        """The current /dev/pts/N behind ``port`` (None while unplugged)."""
+        return self._slave_path
+
+    def unplug(self) -> None:
+        """Make the device vanish until ``replug`` (waits until done)."""
+        self._request("unplug")
+
+    def replug(self) -> None:
+        """Bring the device back on a new pseudo-terminal behind the same ``port`` path."""
+        self._request("replug")
+
+    def stop(self) -> None:
+        """Stop the firmware thread, close the pty and remove the folder. Safe to call twice."""
+        if self._stopping:
+            return
+        self._stopping = True
+        self._wake()
+        self._thread.join(timeout=5)
+        self._protocol.close()
+        self._unplug()
+        for fd in (self._wake_r, self._wake_w):
+            try:
+                os.close(fd)
+            except OSError:
+                pass
+        shutil.rmtree(self._dir, ignore_errors=True)
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.stop()
+        return False
+
+    def __repr__(self):
+        return f"<FirmwareHandle {self.kind} port={self.port} plugged={self.plugged}>"
+
+    # ---------------------------------------------------------- pty life
+    def _plug(self) -> None:
+        master, slave = os.openpty()
+        tty.setraw(slave)
+        tty.setraw(master)
+        os.set_blocking(master, False)
+        fcntl.fcntl(master, fcntl.F_SETFD, fcntl.FD_CLOEXEC)
+        self._master, self._slave = master, slave
+        self._slave_path = os.ttyname(slave)
+        self._buffer = b""
+        tmp = self.port + ".new"
+        try:
+            os.unlink(tmp)
+        except FileNotFoundError:
+            pass
+        os.symlink(self._slave_path, tmp)
+        os.replace(tmp, self.port)
+
+    def _unplug(self) -> None:
+        try:
+            os.unlink(self.port)
+        except FileNotFoundError:
+            pass
+        for fd in (self._master, self._slave):
+            if fd is not None:
+                try:
+                    os.close(fd)
+                except OSError:
+                    pass
+        if self._master is not None:
+            self._protocol.link_lost()
+        self._master = self._slave = self._slave_path = None
+
+    def _request(self, what: str) -> None:
+        if self._stopping:
+            raise RuntimeError(f"firmware {self.name} is stopped")
+        done = threading.Event()
+        with self._lock:
+            self._requests.append((what, done))
+        self._wake()
+        if not done.wait(timeout=5):
+            raise RuntimeError(f"firmware {self.name} did not handle {what} within 5 s")
+
+    def _wake(self) -> None:
+        try:
+            os.write(self._wake_w, b"x")
+        except OSError:
+            pass
+
+    # -------------------------------------------------------------- loop
+    def _run(self) -> None:
+        while not self._stopping:
+            now = time.monotonic()
+            deadlines = [d for d in (self._protocol.next_deadline(), self._replug_at) if d is not None]
+            timeout = max(0.0, min(deadlines) - now) if deadlines else 0.5
+            fds = [self._wake_r] + ([self._master] if self._master is not None else [])
+            try:
+                readable, _, _ = select.select(fds, [], [], timeout)
+            except (OSError, ValueError):
+                readable = []
+            if self._stopping:
+                break
+            if self._wake_r in readable:
+                try:
+                    os.read(self._wake_r, 4096)
+                except OSError:
+                    pass
+            self._serve_requests()
+            now = time.monotonic()
+            if self._replug_at is not None and now >= self._replug_at:
+                self._replug_at = None
+                if self._master is None:
+                    self._plug()
+            self._protocol.tick(now)
+            if self._master is not None and self._master in readable:
+                self._read_commands()
+
+    def _serve_requests(self) -> None:
+        with self._lock:
+            requests, self._requests = self._requests, []
+        for what, done in requests:
+            if what == "unplug" and self._master is not None:
+                self._unplug()
+                self._replug_at = None
+            elif what == "replug" and self._master is None:
+                self._replug_at = None
+                self._plug()
+            done.set()
+
+    def _read_commands(self) -> None:
+        try:
+            data = os.read(self._master, 4096)
+        except BlockingIOError:
+            return
+        except OSError as exc:
+            if exc.errno == errno.EIO:
+                return
+            raise
+        self._buffer += data
+        while b"\n" in self._buffer and self._master is not None:
+            raw, self._buffer = self._buffer.split(b"\n", 1)
+            with self._lock:
+                self._commands_seen += 1
+                n = self._commands_seen
+            fault = self._fault_for(n)
+            if fault is not None and fault.kind == "unplug":
+                self._unplug()
+                self._replug_at = time.monotonic() + fault.duration_s
+                return
+            line = raw.decode("ascii", errors="replace").strip()
+            reply = self._protocol.handle(line).encode("ascii", errors="replace")
+            if fault is not None and fault.kind == "no_reply":
+                continue
+            if fault is not None and fault.kind == "garbled":
+                reply = _garble(reply)
+            self._write(reply + b"\n")
+
+    def _fault_for(self, n: int) -> FirmwareFault | None:
+        for fault in self.faults:
+            span = 1 if fault.kind == "unplug" else fault.count
+            if fault.at_command <= n < fault.at_command + span:
+                return fault
+        return None
+
+    def _write(self, data: bytes) -> None:
+        try:
+            os.write(self._master, data)
+        except (BlockingIOError, OSError):
+            pass  # output buffer full or link gone: the reply is lost, as on a real line
+
+
+def start_firmware(kind: str, optics, *, faults=(), settle_s: float = 0.0, name: str | None = None) -> FirmwareHandle:
+    """Start a firmware simulator of ``kind`` ('modulator' or 'safety') bound to ``optics``.
+
+    faults: FirmwareFault models or dicts {kind, at_command, count, duration_s}.
+    settle_s: modulator settle time (READY? turns 1 and the trigger fires after it) or
+    shutter travel time of the safety box.
+    name: name of the symlink (default: the kind). Returns the running FirmwareHandle.
+    """
+    return FirmwareHandle(kind, optics, faults=faults, settle_s=settle_s, name=name)

@@ -1,0 +1,296 @@
+"""The simulated optical bench shared by all simulated devices.
+
+One ``SimulatedOptics`` object is the "world" of a simulated bench: the
+sample, the mask set, the laser power, the state of the beam shutter, of the
+interlock chain and of the modulator, and the hardware trigger line between
+the modulator and the camera. Firmware threads (``simulators.firmware``) and
+in-process drivers write it; the simulated camera reads it. Every piece of
+state is protected by one lock, so it can be shared between threads.
+
+Physics (far field, Fraunhofer): with mask k shown, the detector sees the
+intensity ``|F(m_k * x)|^2`` where F is the unitary 2-D DFT (``norm='ortho'``)
+and x the field leaving the sample on the reconstruction grid. On the sensor
+the pattern is drawn with the zero frequency in the middle (``fftshift``) and
+placed in the centred region ``grid_roi``; pixels outside receive no light.
+
+Convention shared with the reconstruction: cropping ``grid_roi`` from a
+frame and applying ``np.fft.ifftshift`` gives back ``y_k = |F(m_k * x)|^2``
+in the unshifted layout that ``maskrun.reconstruct`` uses, and
+``truth_field()`` is the x for which that y_k is in incident photons per
+second.
+"""
+
+from __future__ import annotations
+
+import threading
+from typing import Callable
+
+import numpy as np
+
+__all__ = ["SimulatedOptics"]
+
+StateListener = Callable[[str, object], None]
+
+
+class SimulatedOptics:
+    """The simulated bench: sample, masks, laser, shutter, interlock, modulator state, trigger line.
+
+    sample: complex (H, W) field leaving the sample on the reconstruction grid (any scale).
+    masks: complex (K, H, W) mask set the modulator can show.
+    photon_rate_per_s: incident photons per second reaching the detector with the
+        shutter open, averaged over the K masks (the sample is rescaled so that
+        ``mean_k sum_pixels |F(m_k x)|^2 == photon_rate_per_s``; for unit-energy
+        masks this is the photon rate with a blank mask too).
+    sensor_shape: (rows, cols) of the camera sensor; must be at least the grid shape.
+
+    State (properties, lock-protected): ``shutter_open`` (False at start),
+    ``interlock_closed`` (True at start = doors shut, safe), ``shown_mask``
+    (None at start = blank, all-ones mask).
+
+    Listeners registered with ``subscribe`` are called as ``listener(name, value)``
+    after a state change (outside the lock); the safety firmware uses this to
+    close the shutter the moment the interlock opens.
+    """
+
+    def __init__(self, sample, masks, photon_rate_per_s: float, sensor_shape):
+        sample = np.asarray(sample)
+        masks = np.asarray(masks)
+        if sample.ndim != 2:
+            raise ValueError(f"sample must be a 2-D complex field (H, W), got shape {sample.shape}")
+        if masks.ndim != 3 or masks.shape[1:] != sample.shape:
+            raise ValueError(
+                f"masks must have shape (K, H, W) = (K, {sample.shape[0]}, {sample.shape[1]}) "
+                f"to match the sample, got {masks.shape}"
+            )
+        if masks.shape[0] < 1:
+            raise ValueError("masks must hold at least one mask (K >= 1)")
+        rate = float(photon_rate_per_s)
+        if not np.isfinite(rate) or rate < 0:
+            raise ValueError(f"photon_rate_per_s must be a finite number >= 0, got {photon_rate_per_s!r}")
+        sensor = tuple(int(s) for s in sensor_shape)
+        if len(sensor) != 2:
+            raise ValueError(f"sensor_shape must be (rows, cols), got {sensor_shape!r}")
+        if sensor[0] < sample.shape[0] or sensor[1] < sample.shape[1]:
+            raise ValueError(
+                f"sensor_shape {sensor} is smaller than the grid shape {tuple(sample.shape)}: "
+                "the sensor must be at least as large as the reconstruction grid in both directions"
+            )
+        self._lock = threading.RLock()
+        self._trigger = threading.Condition(threading.Lock())
+        self._pending_triggers = 0
+        self._triggers_fired = 0
+        self._listeners: list[StateListener] = []
+        self._grid_shape = (int(sample.shape[0]), int(sample.shape[1]))
+        self._sensor_shape = sensor
+        self._photon_rate_per_s = rate
+        self._masks = masks.astype(np.complex128, copy=True)
+        self._sample = sample.astype(np.complex128, copy=True)
+        self._scale = self._compute_scale()
+        self._patterns: dict[int | None, np.ndarray] = {}
+        self._shutter_open = False
+        self._interlock_closed = True
+        self._shown_mask: int | None = None
+
+    # ------------------------------------------------------------ geometry
+    @property
+    def grid_shape(self) -> tuple[int, int]:
+        """(H, W) of the reconstruction grid."""
+        return self._grid_shape
+
+    @property
+    def sensor_shape(self) -> tuple[int, int]:
+        """(rows, cols) of the sensor."""
+        return self._sensor_shape
+
+    @property
+    def mask_count(self) -> int:
+        """K, the number of masks in the set."""
+        with self._lock:
+            return int(self._masks.shape[0])
+
+    @property
+    def photon_rate_per_s(self) -> float:
+        return self._photon_rate_per_s
+
+    @property
+    def grid_roi(self) -> tuple[int, int, int, int]:
+        """(row0, col0, rows, cols): the centred sensor region where the diffraction pattern lands."""
+        h, w = self._grid_shape
+        rows, cols = self._sensor_shape
+        return ((rows - h) // 2, (cols - w) // 2, h, w)
+
+    # --------------------------------------------------------------- state
+    def subscribe(self, listener: StateListener) -> Callable[[], None]:
+        """Call ``listener(name, value)`` after each state change; returns an unsubscribe function."""
+        with self._lock:
+            self._listeners.append(listener)
+
+        def unsubscribe() -> None:
+            with self._lock:
+                if listener in self._listeners:
+                    self._listeners.remove(listener)
+
+        return unsubscribe
+
+    def _set(self, name: str, value) -> None:
+        with self._lock:
+            changed = getattr(self, "_" + name) != value
+            setattr(self, "_" + name, value)
+            listeners = list(self._listeners) if changed else []
+        for listener in listeners:
+            listener(name, value)
+
+    @property
+    def shutter_open(self) -> bool:
+        with self._lock:
+            return self._shutter_open
+
+    @shutter_open.setter
+    def shutter_open(self, value: bool) -> None:
+        self._set("shutter_open", bool(value))
+
+    @property
+    def interlock_closed(self) -> bool:
+        """True while the interlock chain is complete (doors shut): the only state in which light may pass."""
+        with self._lock:
+            return self._interlock_closed
+
+    @interlock_closed.setter
+    def interlock_closed(self, value: bool) -> None:
+        self._set("interlock_closed", bool(value))
+
+    @property
+    def shown_mask(self) -> int | None:
+        """Index of the mask on the modulator, or None for a blank (all-ones) mask."""
+        with self._lock:
+            return self._shown_mask
+
+    @shown_mask.setter
+    def shown_mask(self, value: int | None) -> None:
+        if value is not None:
+            value = int(value)
+            if not 0 <= value < self.mask_count:
+                raise ValueError(f"mask index {value} out of range 0..{self.mask_count - 1}")
+        self._set("shown_mask", value)
+
+    # -------------------------------------------------------- sample/masks
+    def _compute_scale(self) -> float:
+        """Factor s so that mean_k sum |F(m_k (sqrt(s) x))|^2 = photon rate (F unitary: = sum |m_k x|^2)."""
+        energy = np.mean(np.sum(np.abs(self._masks * self._sample[None]) ** 2, axis=(1, 2)))
+        if energy <= 0:
+            return 0.0
+        return self._photon_rate_per_s / float(energy)
+
+    @property
+    def sample(self) -> np.ndarray:
+        """A copy of the sample field as given (not rescaled)."""
+        with self._lock:
+            return self._sample.copy()
+
+    def set_sample(self, field, *, rescale: bool = True) -> None:
+        """Replace the sample (same grid shape).
+
+        rescale=True (default) rescales so the mean photon rate stays ``photon_rate_per_s``;
+        rescale=False keeps the current scale factor (laser power fixed: a darker sample
+        then sends fewer photons, as on a real bench).
+        """
+        field = np.asarray(field)
+        if field.shape != self._grid_shape:
+            raise ValueError(f"sample shape {field.shape} does not match the grid shape {self._grid_shape}")
+        with self._lock:
+            self._sample = field.astype(np.complex128, copy=True)
+            if rescale:
+                self._scale = self._compute_scale()
+            self._patterns.clear()
+
+    @property
+    def masks(self) -> np.ndarray:
+        with self._lock:
+            return self._masks.copy()
+
+    def set_masks(self, masks) -> None:
+        """Replace the mask set (same grid shape; K may change). Rescales to keep the mean photon rate."""
+        masks = np.asarray(masks)
+        if masks.ndim != 3 or masks.shape[1:] != self._grid_shape or masks.shape[0] < 1:
+            raise ValueError(f"masks must have shape (K, {self._grid_shape[0]}, {self._grid_shape[1]}), got {masks.shape}")
+        with self._lock:
+            self._masks = masks.astype(np.complex128, copy=True)
+            self._scale = self._compute_scale()
+            self._patterns.clear()
+            if self._shown_mask is not None and self._shown_mask >= masks.shape[0]:
+                self._shown_mask = None
+
+    def truth_field(self) -> np.ndarray:
+        """The sample in units of sqrt(photons/s) (complex128, grid shape).
+
+        ``sum(|F(m_k * truth)|^2)`` is the incident photon rate with mask k, and
+        ``|F(m_k * truth)|^2 * exposure_s`` is what ``expected_photons`` places (fftshifted)
+        in ``grid_roi``.
+        """
+        with self._lock:
+            return self._sample * np.sqrt(self._scale)
+
+    # ------------------------------------------------------------- photons
+    def _pattern_per_s(self, mask: int | None) -> np.ndarray:
+        """Fftshifted photon rate per grid pixel for one mask (cached; caller holds the lock)."""
+        pattern = self._patterns.get(mask)
+        if pattern is None:
+            field = self._sample if mask is None else self._masks[mask] * self._sample
+            pattern = np.abs(np.fft.fft2(field, norm="ortho")) ** 2
+            pattern *= self._scale
+            pattern = np.fft.fftshift(pattern)
+            pattern.setflags(write=False)
+            self._patterns[mask] = pattern
+        return pattern
+
+    def expected_photons(self, exposure_s: float, out: np.ndarray | None = None) -> np.ndarray:
+        """Incident photons per sensor pixel during an exposure (float64, sensor_shape).
+
+        Zeros when the shutter is closed; otherwise the fftshifted pattern of the shown
+        mask (blank mask if none) times ``exposure_s`` in ``grid_roi``, zero elsewhere.
+        ``out`` (float64, sensor_shape) may be given to avoid an allocation.
+        """
+        exposure_s = float(exposure_s)
+        if not np.isfinite(exposure_s) or exposure_s < 0:
+            raise ValueError(f"exposure_s must be a finite time >= 0 seconds, got {exposure_s}")
+        if out is None:
+            out = np.zeros(self._sensor_shape, dtype=np.float64)
+        else:
+            if out.shape != self._sensor_shape or out.dtype != np.float64:
+                raise ValueError(f"out must be float64 of shape {self._sensor_shape}")
+            out.fill(0.0)
+        with self._lock:
+            if not self._shutter_open:
+                return out
+            pattern = self._pattern_per_s(self._shown_mask)
+        r0, c0, h, w = self.grid_roi
+        np.multiply(pattern, exposure_s, out=out[r0 : r0 + h, c0 : c0 + w])
+        return out
+
+    # -------------------------------------------------------- trigger line
+    def fire_trigger(self) -> None:
+        """Send one pulse on the trigger line. Pulses are latched until a camera consumes them."""
+        with self._trigger:
+            self._pending_triggers += 1
+            self._triggers_fired += 1
+            self._trigger.notify_all()
+
+    def wait_trigger(self, timeout_s: float) -> bool:
+        """Wait for (and consume) one trigger pulse; False if none arrives within timeout_s."""
+        with self._trigger:
+            ok = self._trigger.wait_for(lambda: self._pending_triggers > 0, timeout=max(0.0, float(timeout_s)))
+            if ok:
+                self._pending_triggers -= 1
+            return bool(ok)
+
+    def clear_triggers(self) -> int:
+        """Drop latched trigger pulses (a camera does this when it is armed); returns how many."""
+        with self._trigger:
+            n, self._pending_triggers = self._pending_triggers, 0
+            return n
+
+    @property
+    def triggers_fired(self) -> int:
+        """Total trigger pulses sent since creation."""
+        with self._trigger:
+            return self._triggers_fired

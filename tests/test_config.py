@@ -1,0 +1,87 @@
+"""Config validation: good files load, bad files say file, key path and what was expected."""
+
+from pathlib import Path
+
+import pytest
+
+from maskrun.daemon.config import ConfigError, demo_config_text, load_config, load_demo_config, parse_config
+
+
+def test_demo_config_is_the_documented_default_bench():
+    cfg = load_demo_config()
+    assert cfg.masks.count == 8
+    assert tuple(cfg.grid.shape) == (128, 128)
+    assert cfg.run.passes == 3
+    assert cfg.simulation is not None
+    assert cfg.camera.driver == "simulated"
+    assert cfg.modulator.driver == "serial-line" and cfg.safety.driver == "serial-line"
+
+
+def test_repo_demo_file_matches_embedded_copy():
+    repo_copy = Path(__file__).resolve().parents[1] / "configs" / "demo.toml"
+    assert repo_copy.read_text() == demo_config_text()
+
+
+def _with(text: str, old: str, new: str) -> str:
+    assert old in text, old
+    return text.replace(old, new, 1)
+
+
+def test_unknown_key_is_named_with_its_path():
+    bad = _with(demo_config_text(), "passes = 3", "passes = 3\npasess = 4")
+    with pytest.raises(ConfigError) as exc:
+        parse_config(bad, "bench.toml")
+    assert "bench.toml: run.pasess: unknown key" in str(exc.value)
+
+
+def test_wrong_type_names_the_key_and_the_value():
+    bad = _with(demo_config_text(), "exposure_s = 0.01", 'exposure_s = "fast"')
+    with pytest.raises(ConfigError) as exc:
+        parse_config(bad, "bench.toml")
+    msg = str(exc.value)
+    assert "camera.exposure_s" in msg and "'fast'" in msg
+
+
+def test_zero_masks_is_refused_with_a_reason():
+    bad = _with(demo_config_text(), "count = 8", "count = 0")
+    with pytest.raises(ConfigError) as exc:
+        parse_config(bad, "bench.toml")
+    assert "masks.count" in str(exc.value) and "at least one mask" in str(exc.value)
+
+
+def test_missing_table_is_reported():
+    with pytest.raises(ConfigError) as exc:
+        parse_config('[laser]\nlaser_class = "2"\nwavelength_m = 5.32e-7\npower_w = 0.001\n', "tiny.toml")
+    msg = str(exc.value)
+    for table in ("camera", "response", "modulator", "safety"):
+        assert f"tiny.toml: {table}: required key is missing" in msg
+
+
+def test_malformed_toml_names_the_file_and_the_line(tmp_path):
+    p = tmp_path / "broken.toml"
+    p.write_text("[run]\npasses = = 3\n")
+    with pytest.raises(ConfigError) as exc:
+        load_config(p)
+    assert str(p) in str(exc.value) and "not valid TOML" in str(exc.value) and "line 2" in str(exc.value)
+
+
+def test_missing_file_says_so(tmp_path):
+    with pytest.raises(ConfigError) as exc:
+        load_config(tmp_path / "nope.toml")
+    assert "file not found" in str(exc.value)
+
+
+def test_laser_class_must_be_an_iec_class():
+    # IEC 60825-1:2014 defines classes 1, 1M, 2, 2M, 3R, 3B and 4 (common practice, no source beyond the standard's list).
+    bad = _with(demo_config_text(), 'laser_class = "3R"', 'laser_class = "3A"')
+    with pytest.raises(ConfigError) as exc:
+        parse_config(bad, "bench.toml")
+    assert "laser.laser_class" in str(exc.value)
+
+
+def test_good_file_round_trips_from_disk(tmp_path):
+    p = tmp_path / "bench.toml"
+    p.write_text(demo_config_text())
+    cfg = load_config(p)
+    assert cfg.source_path == str(p)
+    assert cfg.source_text == demo_config_text()
