@@ -169,7 +169,7 @@ def default_exposure_series(
     *,
     steps: int = 50,
     longest_s: float | None = None,
-    overshoot: float = 1.6,
+    overshoot: float = 1.3,
     probe_exposure_s: float | None = None,
     max_probe_tries: int = 8,
     timeout_margin_s: float = 5.0,

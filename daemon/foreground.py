@@ -24,10 +24,10 @@ from rich.table import Table
 
 from .bench import build_bench
 from .config import BenchConfig
-from .recon_link import ReconLink
 from .safety import acknowledge
-from .sequencer import RunControl, RunPlan, RunSummary, Sequencer, State
-from .store import RunHeader, RunStore, StoreError
+from .sequencer import RunControl, RunPlan, RunSummary
+from .session import execute_run
+from .store import StoreError
 from .stream import Publisher
 
 
@@ -72,20 +72,8 @@ def _run(cfg, req, bench, out: Path, ack, console: Console) -> RunSummary:
     exposure = req.exposure_s or cfg.camera.exposure_s
     plan = RunPlan(passes=passes, dark_frames=cfg.run.dark_frames, exposure_s=exposure, output_path=out)
     bench.open()
-    header = RunHeader(
-        run_name=req.name or cfg.run.name,
-        config_toml=cfg.source_text,
-        safety_acknowledgement=ack.to_dict(),
-        grid_shape=bench.grid_shape,
-        masks=bench.masks,
-        frame_dtype=np.dtype(np.uint16 if bench.camera.bit_depth > 8 else np.uint8),
-        laser_wavelength_m=cfg.laser.wavelength_m,
-        camera_bit_depth=bench.camera.bit_depth,
-        truth=bench.truth,
-    )
-    store = RunStore.create(out, header)
     ctx = zmq.Context()
-    pub = recon = None
+    pub = None
     control = RunControl()
     old_handlers = {}
 
@@ -95,44 +83,38 @@ def _run(cfg, req, bench, out: Path, ack, console: Console) -> RunSummary:
     try:
         for sig in (signal.SIGINT, signal.SIGTERM):
             old_handlers[sig] = signal.signal(sig, _on_signal)
-        store.log("safety_ack", f"laser-safety notice acknowledged by {ack.who} via {ack.how} at {ack.when_utc}")
         pub = Publisher(ctx, cfg.stream.publish_address, hwm=cfg.stream.preview_hwm)
-        if cfg.reconstruction.enabled:
-            spec = {"family": cfg.masks.family, "count": cfg.masks.count, "shape": bench.grid_shape,
-                    "seed": cfg.masks.seed, "levels": cfg.masks.levels}
-            recon = ReconLink(ctx, bench.masks, spec, cfg.reconstruction)
-        console.print(f"Run file: [bold]{out}[/]   live stream: {pub.address}")
+        console.print(f"Run file: [bold]{out}[/]")
+        console.print(f"Live stream: {pub.address}")
         with Progress(
             TextColumn("[bold]{task.description}"),
-            BarColumn(),
+            BarColumn(bar_width=24),
             MofNCompleteColumn(),
-            TextColumn("{task.fields[detail]}"),
             TimeElapsedColumn(),
+            TextColumn("{task.fields[detail]}"),
             console=console,
             transient=False,
         ) as progress:
             task = progress.add_task("frames", total=plan.passes * bench.masks.shape[0], detail="")
 
             def observer(p):
-                detail = f"{p.state.value}"
+                detail = p.state.value
                 if p.pass_index >= 0:
-                    detail += f"  pass {p.pass_index + 1}/{plan.passes}  photons/frame {p.photons_last:.3g}"
-                if np.isfinite(p.estimate_error_estimate):
-                    detail += f"  est. error {p.estimate_error_estimate:.2%}"
+                    detail += f" pass {p.pass_index + 1}/{plan.passes}"
                 if np.isfinite(p.estimate_true_error):
-                    detail += f"  true error {p.estimate_true_error:.2%}"
+                    detail += f" error {p.estimate_true_error:.2%}"
+                elif np.isfinite(p.estimate_error_estimate):
+                    detail += f" est. error {p.estimate_error_estimate:.2%}"
                 progress.update(task, completed=p.frames_done, detail=detail)
 
-            summary = Sequencer(bench, store, pub, recon, plan, control, observer).run()
+            summary = execute_run(bench, plan, ack, publisher=pub, zmq_context=ctx, control=control,
+                                  observer=observer, run_name=req.name or cfg.run.name)
     finally:
         for sig, h in old_handlers.items():
             signal.signal(sig, h)
         bench.close()
-        if recon is not None:
-            recon.close()
         if pub is not None:
             pub.close()
-        store.close()
         ctx.term()
     return summary
 

@@ -313,11 +313,25 @@ def analyse_photon_transfer(
     signal_var = var - var_d
     n = len(steps)
 
+    # --- saturated from the start: clipped, or a signal that does not grow with the light.
+    n_pix = max(int(steps[-1].n_pixels), 1)
+    noise_floor_dn = max(0.5, 5.0 * math.sqrt((var[-1] + var_d[-1]) / n_pix))
+    light = mu_p if np.all(np.isfinite(mu_p)) else texp
+    flat = bool(signal[0] > noise_floor_dn and light[-1] >= 1.2 * light[0]
+                and signal[-1] - signal[0] <= 0.05 * signal[0])
+    if clipped[0] > 0.5 or flat:
+        raise SaturatedFromStart(
+            f"the series is saturated from the first step (at {texp[0]:.3g} s the mean is {mean[0]:.1f} DN, "
+            f"{100 * clipped[0]:.0f} % of pixels at the ADC maximum, and the signal does not grow with the "
+            f"light): lower the light or the shortest exposure, e.g. start at {texp[0] / 20:.3g} s",
+            steps,
+        )
+
     # --- saturation: where the temporal variance peaks (EMVA 1288).
     sat = int(np.argmax(var))
     past_peak = bool(sat < n - 1 and np.min(var[sat + 1:]) < _PAST_PEAK_DROP * var[sat])
     if not past_peak:
-        raise LightTooWeak(_advice_never_saturates(texp, signal, mean_d, max_dn), steps)
+        raise LightTooWeak(_advice_never_saturates(texp, signal, mean_d, max_dn, noise_floor_dn), steps)
     if sat == 0 or signal[sat] <= 0:
         raise SaturatedFromStart(
             f"the series is saturated from the first step (the variance peaks at the shortest exposure, "
@@ -427,12 +441,13 @@ def analyse_photon_transfer(
     )
 
 
-def _advice_never_saturates(texp, signal, mean_d, max_dn) -> str:
+def _advice_never_saturates(texp, signal, mean_d, max_dn, noise_floor_dn) -> str:
     """Message for a series whose variance never peaks: how long the exposure must get."""
     longest = float(texp[-1])
-    if signal[-1] <= 0 or not np.isfinite(signal[-1]):
+    if not signal[-1] > noise_floor_dn:
         return (
-            f"light too weak: no signal above the dark level even at the longest exposure ({longest:.3g} s); "
+            f"light too weak: no signal above the dark level even at the longest exposure ({longest:.3g} s, "
+            f"{signal[-1]:.2f} DN above dark); "
             "check that the shutter opens and the light source is on, then raise the light or the exposure range"
         )
     rate_dn_per_s = float(signal[-1] / longest) if longest > 0 else float("nan")

@@ -20,6 +20,7 @@ import errno
 import os
 import re
 import string
+import termios
 import time
 
 import serial
@@ -31,6 +32,8 @@ from .errors import DeviceDisconnected, DeviceFault, DeviceTimeout
 __all__ = ["LinePort", "LineCommand", "SerialLineSettings", "template_fields", "require_fields"]
 
 _READ_SLICE_S = 0.02
+#: everything a lost line can raise (pyserial wraps most, but not termios calls)
+_LINE_ERRORS = (serial.SerialException, OSError, termios.error)
 
 
 class LinePort:
@@ -78,7 +81,7 @@ class LinePort:
                                  write_timeout=self.write_timeout_s, exclusive=True)
         except serial.SerialException as exc:
             raise self._open_error(exc) from exc
-        except OSError as exc:  # pragma: no cover - pyserial wraps most of these
+        except (OSError, termios.error) as exc:  # pragma: no cover - pyserial wraps most of these
             raise self._open_error(exc) from exc
         self._serial = port
         self._discard_input()
@@ -112,7 +115,7 @@ class LinePort:
         if port is not None:
             try:
                 port.close()
-            except (serial.SerialException, OSError):
+            except _LINE_ERRORS:
                 pass
 
     def reconnect(self, timeout_s: float = 2.0) -> None:
@@ -151,7 +154,7 @@ class LinePort:
         port = self._require_open()
         try:
             port.reset_input_buffer()
-        except (serial.SerialException, OSError) as exc:
+        except _LINE_ERRORS as exc:
             raise self._lost(exc) from exc
 
     def send(self, line: str) -> None:
@@ -167,7 +170,7 @@ class LinePort:
         except serial.SerialTimeoutException as exc:
             raise DeviceTimeout(f"could not send {line!r} to {self.path} within {self.write_timeout_s} s",
                                 device=self.device) from exc
-        except (serial.SerialException, OSError) as exc:
+        except _LINE_ERRORS as exc:
             raise self._lost(exc) from exc
 
     def read_line(self, timeout_s: float, *, command: str = "") -> str:
@@ -178,7 +181,7 @@ class LinePort:
         while True:
             try:
                 chunk = port.read(max(1, port.in_waiting))
-            except (serial.SerialException, OSError) as exc:
+            except _LINE_ERRORS as exc:
                 raise self._lost(exc) from exc
             if chunk:
                 buffer += chunk

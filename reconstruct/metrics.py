@@ -5,7 +5,25 @@ import numpy as np
 
 from .validation import ReconstructionInputError
 
-__all__ = ["relative_error", "align_global_phase", "amplitude_residual"]
+__all__ = ["relative_error", "align_global_phase", "amplitude_residual", "norm", "inner"]
+
+
+# BLAS-free reductions: on the shared 2-core machine the threaded BLAS was
+# seen to stall (8 ms for a 16k-element dot); einsum's own loop does not.
+def inner(b, a) -> complex:
+    """<b, a> = sum(conj(b) * a), complex128, without BLAS."""
+    b = np.asarray(b, dtype=np.complex128).reshape(-1)
+    a = np.asarray(a, dtype=np.complex128).reshape(-1)
+    return complex(np.einsum("i,i->", np.conj(b), a))
+
+
+def norm(a) -> float:
+    """Euclidean norm of any real or complex array, float64, without BLAS."""
+    a = np.asarray(a).reshape(-1)
+    if np.iscomplexobj(a):
+        return float(np.sqrt(np.einsum("i,i->", a.real, a.real, dtype=np.float64)
+                             + np.einsum("i,i->", a.imag, a.imag, dtype=np.float64)))
+    return float(np.sqrt(np.einsum("i,i->", a, a, dtype=np.float64)))
 
 
 def align_global_phase(x, x_hat) -> np.ndarray:
@@ -14,7 +32,7 @@ def align_global_phase(x, x_hat) -> np.ndarray:
     b = np.asarray(x_hat, dtype=np.complex128)
     if a.shape != b.shape:
         raise ReconstructionInputError(f"shapes differ: truth {a.shape} vs estimate {b.shape}.")
-    c = np.vdot(b, a)  # sum conj(b) * a
+    c = inner(b, a)
     phase = c / abs(c) if c != 0 else 1.0
     return b * phase
 
@@ -29,14 +47,14 @@ def relative_error(x, x_hat) -> float:
     b = np.asarray(x_hat, dtype=np.complex128)
     if a.shape != b.shape:
         raise ReconstructionInputError(f"shapes differ: truth {a.shape} vs estimate {b.shape}.")
-    na = np.linalg.norm(a)
+    na = norm(a)
     if na == 0:
         raise ReconstructionInputError("relative_error is undefined for an all-zero reference x.")
-    c = np.vdot(b, a)
+    c = inner(b, a)
     # ||a - e^{i phi} b||^2 = ||a||^2 + ||b||^2 - 2|<b, a>| at the optimum
-    sq = na**2 + np.linalg.norm(b) ** 2 - 2 * abs(c)
+    sq = na**2 + norm(b) ** 2 - 2 * abs(c)
     if sq < 1e-6 * na**2:  # cancellation: compute directly for small errors
-        return float(np.linalg.norm(a - align_global_phase(a, b)) / na)
+        return float(norm(a - align_global_phase(a, b)) / na)
     return float(np.sqrt(max(sq, 0.0)) / na)
 
 
@@ -44,4 +62,4 @@ def amplitude_residual(intensities, predicted) -> float:
     """|| sqrt(y) - sqrt(y_hat) || / || sqrt(y) ||: the relative data residual."""
     sy = np.sqrt(np.maximum(np.asarray(intensities, dtype=np.float64), 0))
     sp = np.sqrt(np.maximum(np.asarray(predicted, dtype=np.float64), 0))
-    return float(np.linalg.norm(sy - sp) / np.linalg.norm(sy))
+    return float(norm(sy - sp) / norm(sy))

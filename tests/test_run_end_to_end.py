@@ -88,3 +88,33 @@ def test_acknowledgement_is_recorded_in_the_file(tmp_path):
     assert ack["laser_class"] == "3R" and ack["wavelength_m"] == pytest.approx(632.8e-9)
     assert ack["who"] and ack["when_utc"].endswith("Z")
     assert any("laser safety officer" in line for line in ack["notice"])
+
+
+def test_open_interlock_keeps_the_shutter_closed(tmp_path):
+    import zmq
+
+    from maskrun.daemon.bench import build_bench
+    from maskrun.daemon.safety import make_acknowledgement
+    from maskrun.daemon.sequencer import RunPlan
+    from maskrun.daemon.session import execute_run
+
+    cfg = small_bench(passes=1)
+    bench = build_bench(cfg)
+    shutter_history = []
+    bench.optics.subscribe(lambda name, value: shutter_history.append(value) if name == "shutter_open" else None)
+    bench.optics.interlock_closed = False  # the enclosure door is open
+    ctx = zmq.Context()
+    try:
+        bench.open()
+        ack = make_acknowledgement(cfg.laser, who="tester", how="test")
+        plan = RunPlan(passes=1, dark_frames=1, exposure_s=cfg.camera.exposure_s, output_path=tmp_path / "r.h5")
+        summary = execute_run(bench, plan, ack, publisher=None, zmq_context=ctx)
+    finally:
+        bench.close()
+        ctx.term()
+    assert summary.state.value == "fault"
+    assert "interlock" in summary.message.lower()
+    assert True not in shutter_history  # the shutter never opened
+    with RunFile(tmp_path / "r.h5") as rf:
+        assert rf.frame_count == 0 and rf.dark_count == 1  # darks need no beam; nothing else was taken
+        assert any("interlock" in e["message"].lower() for e in rf.events() if e["kind"] == "run_end")
