@@ -37,6 +37,7 @@ class Bench:
     optics: Any = None  # SimulatedOptics on a simulated bench
     truth: np.ndarray | None = None  # sqrt(incident photons / s), simulated benches only
     firmware: list = field(default_factory=list)
+    profile: Any = None  # CameraProfile from 'maskrun calibrate', when [response] profile names one
     _opened: list = field(default_factory=list)
 
     @property
@@ -58,6 +59,12 @@ class Bench:
         rows, cols = self.camera.sensor_shape
         h, w = self.grid_shape
         self.camera.roi = ((rows - h) // 2, (cols - w) // 2, h, w)
+        if self.profile is not None:
+            from .camera_profile import check_profile_matches
+
+            # a profile measured on another camera or mode would turn counts into wrong photon numbers
+            check_profile_matches(self.profile, self.camera, path=self.config.response.profile,
+                                  driver_name=self.config.camera.driver)
         self.modulator.load(self.masks)
 
     def close(self) -> None:
@@ -136,8 +143,26 @@ def build_bench(cfg: BenchConfig) -> Bench:
         for fw in firmware:
             fw.stop()
         raise
-    response = Response(cfg.response.gain_dn_per_e, cfg.response.offset_dn, cfg.response.quantum_efficiency)
-    return Bench(cfg, masks, camera, modulator, safety, response, context, optics, truth, firmware)
+    profile = _load_profile(cfg)
+    if profile is not None:
+        qe = profile.quantum_efficiency or cfg.response.quantum_efficiency
+        response = Response(profile.gain_dn_per_e, profile.offset_dn, qe)
+    else:
+        response = Response(cfg.response.gain_dn_per_e, cfg.response.offset_dn, cfg.response.quantum_efficiency)
+    return Bench(cfg, masks, camera, modulator, safety, response, context, optics, truth, firmware, profile=profile)
+
+
+def _load_profile(cfg: BenchConfig):
+    """The camera profile named in [response] profile (relative paths from the config's folder), or None."""
+    if not cfg.response.profile:
+        return None
+    from .camera_profile import CameraProfile, ProfileError
+
+    path = cfg.config_dir / cfg.response.profile
+    try:
+        return CameraProfile.load(path)
+    except (ProfileError, OSError) as exc:
+        raise ConfigError(cfg.source_path, [("response.profile", str(exc))]) from None
 
 
 def _simulated_optics(cfg: BenchConfig, masks: np.ndarray, sensor_shape):

@@ -21,7 +21,6 @@ import numpy as np
 from ..drivers.base import Camera, Frame, SafetyBox
 from ..drivers.errors import DeviceFault
 from .photon_transfer import (
-    PhotonTransferError,
     PhotonTransferResult,
     StepStatistics,
     analyse_photon_transfer,
@@ -46,7 +45,7 @@ class CalibrationAborted(RuntimeError):
         super().__init__(message)
 
 
-def _grab(camera: Camera, exposure_s: float, timeout_s: float) -> Frame:
+def _grab(camera: Camera, timeout_s: float) -> Frame:
     camera.trigger()
     return camera.grab(timeout_s)
 
@@ -54,9 +53,9 @@ def _grab(camera: Camera, exposure_s: float, timeout_s: float) -> Frame:
 def _take_frames(camera: Camera, exposure_s: float, count: int, discard: int, timeout_s: float) -> list[np.ndarray]:
     frames: list[np.ndarray] = []
     for _ in range(discard):
-        _grab(camera, exposure_s, timeout_s)
+        _grab(camera, timeout_s)
     while len(frames) < count:
-        frame = _grab(camera, exposure_s, timeout_s)
+        frame = _grab(camera, timeout_s)
         used = float(frame.exposure_s)
         if not math.isclose(used, exposure_s, rel_tol=_EXPOSURE_TOLERANCE, abs_tol=1e-7):
             raise DeviceFault(
@@ -148,8 +147,6 @@ def measure_photon_transfer(
             mu_p = None if photons_per_pixel_per_s is None else photons_per_pixel_per_s * t
             steps.append(step_statistics(t, bright, darks, photons_per_pixel=mu_p, max_dn=max_dn))
             tick(f"bright {t:.4g} s")
-    except PhotonTransferError:
-        raise
     except Exception as exc:
         raise CalibrationAborted(
             f"photon transfer stopped after {len(steps)} of {len(exposures)} bright steps: {exc}", steps

@@ -17,6 +17,10 @@ from rich.console import Console
 
 COMMAND_MODULES = [
     "maskrun.daemon.cmd_run",
+    "maskrun.daemon.cmd_calibrate",
+    "maskrun.daemon.cmd_reconstruct",
+    "maskrun.daemon.cmd_worker",
+    "maskrun.daemon.cmd_drivers",
 ]
 
 
@@ -38,9 +42,10 @@ def expected_errors() -> tuple[type[BaseException], ...]:
 
     from .config import ConfigError
     from .safety import SafetyNotAcknowledged
+    from .camera_profile import ProfileError, ProfileMismatch
     from .store import StoreError
 
-    return (ConfigError, StoreError, SafetyNotAcknowledged, DeviceError, UnknownDriver, DriverSettingsError, CommandError)
+    return (ConfigError, StoreError, ProfileError, ProfileMismatch, SafetyNotAcknowledged, DeviceError, UnknownDriver, DriverSettingsError, CommandError)
 
 
 class CommandError(RuntimeError):

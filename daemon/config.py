@@ -117,11 +117,21 @@ class ChecksConfig(_Table):
     max_photons_per_frame: float = Field(math.inf, gt=0)
     saturation_action: Literal["flag", "shorten", "stop"] = "flag"
     stale_retakes: int = Field(3, ge=0, description="retakes allowed when a frame id does not advance")
+    saturation_shorten_factor: float = Field(
+        0.5, gt=0, lt=1, description="saturation_action = 'shorten': the exposure is multiplied by this and the frame retaken")
+    saturation_max_shortenings: int = Field(4, ge=1, description="shortenings tried for one frame before it is kept, flagged")
+    max_dose_photons: float | None = Field(
+        None, gt=0, description="stop the run before the cumulative incident photons on the sample pass this")
+    max_dose_energy_per_area_j_per_m2: float | None = Field(
+        None, gt=0, description="stop the run before the cumulative energy per area passes this (needs illuminated_area_m2)")
+    illuminated_area_m2: float | None = Field(None, gt=0, description="beam area on the sample, for the energy-per-area dose")
 
     @model_validator(mode="after")
     def _order(self):
         if self.min_photons_per_frame >= self.max_photons_per_frame:
             raise ValueError("min_photons_per_frame must be below max_photons_per_frame")
+        if self.max_dose_energy_per_area_j_per_m2 is not None and self.illuminated_area_m2 is None:
+            raise ValueError("max_dose_energy_per_area_j_per_m2 needs illuminated_area_m2 (the beam area on the sample, m^2)")
         return self
 
 
@@ -132,6 +142,11 @@ class ReconstructionConfig(_Table):
     window: int = Field(1, ge=1)
     iterations_per_update: int = Field(100, ge=1)
     time_budget_s: float | None = Field(None, gt=0)
+    local_worker: bool = Field(True, description="start the reconstruction worker on this machine; false: only "
+                               "remote workers ('maskrun worker --connect ADDRESS') reconstruct")
+    worker_address: str = Field("tcp://127.0.0.1:0", description="frame sets are offered here, estimates come back "
+                                "on the next port; port 0 = any free port (local worker only); not on loopback "
+                                "needs [service] server_secret_key and authorized_clients_dir")
 
 
 class RunConfig(_Table):
@@ -140,11 +155,51 @@ class RunConfig(_Table):
     dark_frames: int = Field(4, ge=0, description="dark frames (shutter closed) taken before the first pass")
     output_dir: str = "runs"
     operator: str = Field("", description="who runs the bench; recorded with the safety acknowledgement")
+    interval_s: float | None = Field(None, gt=0, description="time series: start a frame set every interval_s seconds")
+    duration_s: float | None = Field(
+        None, gt=0, description="time series: keep taking frame sets for this long (needs interval_s; replaces passes)")
+    min_free_disk_mb: float = Field(
+        200.0, ge=0, description="refuse to start, or stop safely, when the run would leave less free disk than this")
+
+    @model_validator(mode="after")
+    def _series(self):
+        if self.duration_s is not None and self.interval_s is None:
+            raise ValueError("duration_s needs interval_s (e.g. interval_s = 600 for a frame set every 10 minutes)")
+        return self
+
+
+class RecoveryConfig(_Table):
+    """Fault handling during a run: retries with backoff, reconnects, pauses."""
+
+    retries: int = Field(3, ge=0, description="retries of a camera grab or a modulator command before the run pauses")
+    backoff_initial_s: float = Field(0.1, ge=0, description="wait before the first retry, seconds")
+    backoff_factor: float = Field(2.0, ge=1, description="each further retry waits this many times longer")
+    backoff_max_s: float = Field(5.0, ge=0, description="longest wait between retries, seconds")
+    reconnect_attempts: int = Field(5, ge=0, description="reconnects of a lost device before the run pauses")
+    pause_timeout_s: float = Field(
+        3600.0, ge=0, description="a paused run not resumed within this time stops safely (0 = wait for ever)")
 
 
 class StreamConfig(_Table):
     publish_address: str = Field("tcp://127.0.0.1:0", description="ZeroMQ PUB address; port 0 picks a free port")
     preview_hwm: int = Field(10, ge=1, description="queued messages per subscriber before previews are dropped")
+
+
+class ServiceConfig(_Table):
+    """The long-running daemon (`maskrun serve`): control and stream sockets, keys, status rate.
+
+    Control binds to loopback unless CURVE keys are configured (server_secret_key and
+    authorized_clients_dir, made by `maskrun keys DIR`); the stream (read-only) may bind anywhere.
+    Relative key paths are taken from the config file's folder.
+    """
+
+    control_address: str = Field("tcp://127.0.0.1:5650", description="ZeroMQ control (request/reply) address")
+    publish_address: str = Field("tcp://127.0.0.1:5651", description="ZeroMQ stream (publish) address")
+    server_secret_key: str | None = Field(None, description="server.key_secret from 'maskrun keys DIR'")
+    authorized_clients_dir: str | None = Field(None, description="folder of client public keys (*.key) allowed in")
+    status_interval_s: float = Field(0.5, gt=0, le=60, description="status message period on the stream")
+    max_request_bytes: int = Field(65536, ge=1024, le=1 << 20, description="largest control request answered")
+    acknowledgement_valid_s: float = Field(43200.0, gt=0, description="how long a safety acknowledgement holds")
 
 
 class FirmwareConfig(_Table):
@@ -174,7 +229,9 @@ class BenchConfig(_Table):
     checks: ChecksConfig = ChecksConfig()
     reconstruction: ReconstructionConfig = ReconstructionConfig()
     run: RunConfig = RunConfig()
+    recovery: RecoveryConfig = RecoveryConfig()
     stream: StreamConfig = StreamConfig()
+    service: ServiceConfig = ServiceConfig()
     simulation: SimulationConfig | None = None
 
     # where the file came from (not TOML keys)

@@ -1,7 +1,21 @@
-"""Figures drawn from a run file (matplotlib, no display needed).
+"""How maskrun shows images: colour maps, display transforms, and the quick run figure.
 
-Colour maps: 'cividis' for intensities and amplitudes (colour-blind safe,
-perceptually uniform), 'twilight' for phase (cyclic, so -pi and pi meet).
+Shared by the run report (daemon/report.py, matplotlib, no display needed) and
+the live view (daemon/view.py, Qt); only numpy and matplotlib are needed here.
+
+Colour maps (all readable with the common colour-vision deficiencies):
+- intensities and amplitudes: 'cividis' (Nuñez, Anderton & Renslow, "Optimizing
+  colormaps with consideration for color vision deficiency to enable accurate
+  interpretation of scientific data", PLOS ONE 13(7), 2018);
+- wrapped phase: 'twilight', cyclic, so -pi and +pi have the same colour
+  (matplotlib's cyclic perceptually uniform map; from memory: designed by
+  B. Hackenberg for matplotlib 3.0, 2018);
+- unwrapped phase (not cyclic): 'viridis';
+- lines and markers: the Okabe-Ito palette (Okabe & Ito, "Color Universal
+  Design (CUD): how to make figures and presentations that are friendly to
+  colorblind people", 2002/2008), always paired with distinct markers and dash
+  styles, so no line is told apart by colour alone;
+- saturated camera pixels: magenta (SATURATED_RGB), a colour not in cividis.
 """
 
 from __future__ import annotations
@@ -10,83 +24,100 @@ from pathlib import Path
 
 import numpy as np
 
-from .runfile import RunFile
+INTENSITY_CMAP = "cividis"
+PHASE_CMAP = "twilight"
+UNWRAPPED_PHASE_CMAP = "viridis"
+SATURATED_RGB = (255, 0, 255)
+#: Okabe-Ito colours by role, with the marker and dash style that go with each.
+LINE_STYLES = {
+    "true_error": ("#0072B2", "o", "-"),  # blue
+    "error_estimate": ("#E69F00", "s", "--"),  # orange
+    "residual": ("#009E73", "^", ":"),  # bluish green
+    "photons": ("#0072B2", ".", "-"),
+    "saturation": ("#D55E00", ".", "-"),  # vermillion
+}
+LINE_LABELS = {
+    "true_error": "error against the known sample (simulation)",
+    "error_estimate": "error predicted from the photon count",
+    "residual": "data residual (measured vs. modelled frames)",
+}
 
 
-def _mpl():
-    import matplotlib
+def colormap_lut(name: str, n: int = 256) -> np.ndarray:
+    """A matplotlib colour map as an (n, 3) uint8 lookup table (for Qt image items)."""
+    from matplotlib import colormaps
 
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    return plt
+    rgba = colormaps[name](np.linspace(0.0, 1.0, n))
+    return np.ascontiguousarray((rgba[:, :3] * 255 + 0.5).astype(np.uint8))
 
 
 def phase_for_display(estimate: np.ndarray, truth: np.ndarray | None = None) -> np.ndarray:
-    """Phase in radians, with the global phase removed (aligned to the truth if given, else to the
-    amplitude-weighted mean phase)."""
+    """Phase in radians in [-pi, pi], with the global phase removed (which phase retrieval cannot
+    recover): aligned to the truth if given, else so that the amplitude-weighted mean phasor is real."""
     if truth is not None:
         c = np.vdot(estimate, truth)
         estimate = estimate * np.exp(1j * np.angle(c))
     else:
         estimate = estimate * np.exp(-1j * np.angle(np.sum(estimate)))
-    return np.angle(estimate)
+    return np.angle(estimate).astype(np.float32)
 
 
+def _wrap(phi: np.ndarray) -> np.ndarray:
+    return (phi + np.pi) % (2 * np.pi) - np.pi
+
+
+def unwrap_phase_ls(wrapped: np.ndarray) -> np.ndarray:
+    """Unweighted least-squares 2-D phase unwrapping with the discrete cosine transform.
+
+    Method: Ghiglia & Romero, "Robust two-dimensional weighted and unweighted phase
+    unwrapping that uses fast transforms and iterative methods", J. Opt. Soc. Am. A 11(1),
+    107-117, 1994 (the unweighted DCT solution of the Poisson equation with Neumann
+    boundaries). The result is defined up to a constant; it is shifted so that its mean
+    equals the mean of the wrapped input. Exact (up to that constant) where neighbouring
+    true phase differences stay within (-pi, pi). float64 in, float32 out; O(N log N).
+    """
+    from scipy.fft import dctn, idctn
+
+    psi = np.asarray(wrapped, dtype=np.float64)
+    m, n = psi.shape
+    dy = np.zeros_like(psi)
+    dx = np.zeros_like(psi)
+    dy[:-1, :] = _wrap(np.diff(psi, axis=0))
+    dx[:, :-1] = _wrap(np.diff(psi, axis=1))
+    rho = dy.copy()
+    rho[1:, :] -= dy[:-1, :]
+    rho += dx
+    rho[:, 1:] -= dx[:, :-1]
+    r = dctn(rho, type=2, norm="ortho")
+    i = np.arange(m)[:, None]
+    j = np.arange(n)[None, :]
+    denom = 2.0 * (np.cos(np.pi * i / m) + np.cos(np.pi * j / n) - 2.0)
+    denom[0, 0] = 1.0
+    r /= denom
+    r[0, 0] = 0.0
+    phi = idctn(r, type=2, norm="ortho")
+    phi += psi.mean() - phi.mean()
+    return phi.astype(np.float32)
+
+
+def log_counts(frame: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+    """log10 of camera counts (DN), counts below 1 shown as 0 (log10 1). float32; fills ``out`` if given."""
+    if out is None:
+        out = np.empty(frame.shape, dtype=np.float32)
+    np.maximum(frame, 1, out=out, casting="unsafe")
+    return np.log10(out, out=out)
+
+
+def saturated_pixels(frame: np.ndarray, saturation_dn: float | None) -> np.ndarray:
+    """Boolean mask of pixels at or above the saturation level in DN (all False if unknown)."""
+    if saturation_dn is None or not np.isfinite(saturation_dn):
+        return np.zeros(frame.shape, dtype=bool)
+    return frame >= saturation_dn
+
+
+# --------------------------------------------------------------------------- quick run figure
 def plot_run_summary(run_path: str | Path, png_path: str | Path) -> Path:
-    """Raw frame, amplitude, phase and error per pass of one run, as a PNG."""
-    plt = _mpl()
-    with RunFile(run_path) as rf:
-        info = rf.frame_info()
-        frame = rf.frame(rf.frame_count - 1) if rf.frame_count else np.zeros(rf.grid_shape)
-        est = rf.estimates()
-        einfo = rf.estimate_info()
-        truth = rf.truth()
-        name = rf.attrs.get("run_name", "")
-        darks = rf.darks()
-    dark = darks.mean(axis=0) if len(darks) else 0.0
-    fig, axes = plt.subplots(1, 4, figsize=(17, 4.2), constrained_layout=True)
-    ax = axes[0]
-    raw = np.clip(frame.astype(np.float64) - dark, 1.0, None)
-    im = ax.imshow(np.log10(raw), cmap="cividis")
-    last = info[-1] if len(info) else None
-    ax.set_title(
-        f"last frame (pass {last['pass_index']}, mask {last['mask_index']})" if last is not None else "no frames"
-    )
-    ax.set_xlabel("camera column (pixel)")
-    ax.set_ylabel("camera row (pixel)")
-    fig.colorbar(im, ax=ax, label="log10(counts above dark, DN)")
-    if len(est):
-        x = est[-1].astype(np.complex128)
-        ax = axes[1]
-        im = ax.imshow(np.abs(x), cmap="cividis")
-        ax.set_title("amplitude estimate")
-        ax.set_xlabel("sample column (grid pixel)")
-        ax.set_ylabel("sample row (grid pixel)")
-        fig.colorbar(im, ax=ax, label="amplitude, sqrt(photons/s)")
-        ax = axes[2]
-        im = ax.imshow(phase_for_display(x, truth), cmap="twilight", vmin=-np.pi, vmax=np.pi)
-        ax.set_title("phase estimate")
-        ax.set_xlabel("sample column (grid pixel)")
-        ax.set_ylabel("sample row (grid pixel)")
-        fig.colorbar(im, ax=ax, label="phase (rad)")
-        ax = axes[3]
-        passes = einfo["pass_index"] + 1
-        if np.isfinite(einfo["true_error"]).any():
-            ax.semilogy(passes, einfo["true_error"], "o-", color="#0072B2", label="error against truth")
-        ax.semilogy(passes, einfo["error_estimate"], "s--", color="#E69F00", label="predicted from photon count")
-        ax.semilogy(passes, np.maximum(einfo["residual"], 1e-16), "^:", color="#009E73", label="data residual")
-        ax.set_xlabel("pass (frame sets included)")
-        ax.set_ylabel("relative error / residual")
-        ax.set_title("reconstruction per pass")
-        ax.legend(fontsize=8)
-        ax.grid(True, which="both", alpha=0.3)
-    else:
-        for ax in axes[1:]:
-            ax.text(0.5, 0.5, "no estimate", ha="center", va="center")
-            ax.set_axis_off()
-    fig.suptitle(f"maskrun run '{name}'")
-    png_path = Path(png_path)
-    fig.savefig(png_path, dpi=90)
-    plt.close(fig)
-    return png_path
+    """The one-page run figure written after `maskrun run/demo` (the full report: daemon/report.py)."""
+    from .report import render_report_png
+
+    return render_report_png(run_path, png_path)

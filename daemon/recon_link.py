@@ -7,6 +7,18 @@ them. Submitting never blocks: if the workers fall so far behind that the send
 queue is full, the frame set is skipped for live reconstruction (it is in the
 run file anyway, and ``maskrun reconstruct`` can process it later) and the
 caller is told.
+
+Several workers (``maskrun worker --connect ADDRESS`` on other machines, with
+``worker_address`` fixed; see ``remote_workers``) share the frame sets: the
+PUSH socket hands each frame set to one worker. So that the estimate does not
+depend on which worker got which sets, the daemon keeps the data: in
+accumulate mode the running sum of all frame sets (float64), in follow mode
+the last ``window`` sets, and every frame-set message carries their mean and
+``data_passes`` (how many sets it averages); workers use it as is, warm-started
+from their own last estimate. Estimates are handed to the caller in pass
+order: one that overtakes an earlier pass is held until that pass's estimate
+arrives, or ``reorder_timeout_s`` passes (a worker died with it), or the run
+drains.
 """
 
 from __future__ import annotations
@@ -36,7 +48,26 @@ class ReconLink:
         bind_host: str = "127.0.0.1",
         local_worker: bool = True,
         send_hwm: int = 50,
+        worker_address: str | None = None,
+        server_keys=None,
+        reorder_timeout_s: float = 30.0,
     ):
+        """worker_address: tcp://HOST:PORT for frame sets (estimates on PORT+1; port 0 = any free ports),
+        overriding bind_host; server_keys: security.ServerKeys to make both sockets CURVE servers."""
+        self._own_ctx = None
+        self._auth = None
+        self._local_keys_env = None
+        if server_keys is not None:
+            from .remote_workers import local_worker_keys, start_link_authenticator
+
+            self._own_ctx = context = zmq.Context()  # its own authenticator, apart from the service's
+            local_keys, self._local_keys_env = local_worker_keys(server_keys.public)
+            self._auth = start_link_authenticator(context, server_keys, [local_keys.public])
+        self.reorder_timeout_s = reorder_timeout_s
+        self._held: list = []  # (arrival time, EstimateHeader, estimate) waiting for an earlier pass
+        self._acc_sum: np.ndarray | None = None
+        self._acc_n = 0
+        self._recent: collections.deque = collections.deque(maxlen=options.window)
         self.ctx = context
         self.masks = np.ascontiguousarray(masks, dtype=np.complex64)
         self.mask_spec = MaskSpec(**mask_spec, sha256=mask_digest(masks))
@@ -51,11 +82,30 @@ class ReconLink:
         self.push = context.socket(zmq.PUSH)
         self.push.setsockopt(zmq.SNDHWM, send_hwm)
         self.push.setsockopt(zmq.LINGER, 0)
-        self.push.bind(f"tcp://{bind_host}:0")
         self.pull = context.socket(zmq.PULL)
         self.pull.setsockopt(zmq.MAXMSGSIZE, MAX_MESSAGE_BYTES)
         self.pull.setsockopt(zmq.LINGER, 0)
-        self.pull.bind(f"tcp://{bind_host}:0")
+        frames_bind, results_bind = f"tcp://{bind_host}:0", f"tcp://{bind_host}:0"
+        if worker_address is not None:
+            from .remote_workers import bind_endpoints
+
+            frames_bind, results_bind = bind_endpoints(worker_address)
+        if server_keys is not None:
+            from .security import apply_server_keys
+
+            apply_server_keys(self.push, server_keys)
+            apply_server_keys(self.pull, server_keys)
+        try:
+            self.push.bind(frames_bind)
+            self.pull.bind(results_bind)
+        except zmq.ZMQError as exc:
+            self.push.close(0)
+            self.pull.close(0)
+            self._close_security()
+            from .config import ConfigError
+
+            raise ConfigError("[reconstruction] worker_address", [("", f"cannot listen for workers at {frames_bind} / "
+                              f"{results_bind} ({exc}); choose another port (estimates use port + 1)")]) from None
         self.frames_address = self.push.getsockopt_string(zmq.LAST_ENDPOINT)
         self.results_address = self.pull.getsockopt_string(zmq.LAST_ENDPOINT)
         self.outstanding: set[int] = set()
@@ -69,6 +119,10 @@ class ReconLink:
         env = dict(os.environ)
         env.setdefault("OMP_NUM_THREADS", "1")
         env.setdefault("OPENBLAS_NUM_THREADS", "1")
+        if self._local_keys_env is not None:
+            from .remote_workers import LOCAL_WORKER_KEYS_ENV
+
+            env[LOCAL_WORKER_KEYS_ENV] = self._local_keys_env
         self.process = subprocess.Popen(
             [
                 sys.executable,
@@ -92,10 +146,28 @@ class ReconLink:
         self.run_id = uuid.uuid4().hex[:12]
         self.outstanding.clear()
         self._pending.clear()
+        self._held.clear()
+        self._acc_sum, self._acc_n = None, 0
+        self._recent.clear()
+
+    def _daemon_side_data(self, intensities: np.ndarray) -> tuple[np.ndarray, int]:
+        """Fold one frame set into the daemon's data; (mean to send, frame sets it averages)."""
+        if self.options.mode == "accumulate":
+            if self._acc_sum is None:
+                self._acc_sum = np.zeros(intensities.shape, dtype=np.float64)
+            self._acc_sum += intensities
+            self._acc_n += 1
+            return (self._acc_sum / self._acc_n).astype(np.float32), self._acc_n
+        self._recent.append(intensities.copy())
+        acc = np.zeros(intensities.shape, dtype=np.float64)
+        for y in self._recent:
+            acc += y
+        return (acc / len(self._recent)).astype(np.float32), len(self._recent)
 
     def submit(self, pass_index: int, intensities: np.ndarray, exposure_s: float, quantum_efficiency: float) -> bool:
         """Queue one frame set (K, H, W) float32 detected photons, grid orientation. False if skipped."""
         intensities = np.ascontiguousarray(intensities, dtype=np.float32)
+        intensities, data_passes = self._daemon_side_data(intensities)
         hdr = FrameSetHeader(
             run_id=self.run_id,
             pass_index=pass_index,
@@ -104,6 +176,7 @@ class ReconLink:
             estimate_scale=1.0 / float(np.sqrt(quantum_efficiency * exposure_s)),
             masks=self.mask_spec,
             options=self.options,
+            data_passes=data_passes,
         )
         parts = [b"frameset", hdr.model_dump_json().encode(), memoryview(intensities).cast("B")]
         if self.mask_spec.family == "file":
@@ -145,7 +218,24 @@ class ReconLink:
             if hdr.run_id != self.run_id:
                 continue  # a late estimate of an earlier run
             self.outstanding.discard(hdr.pass_index)
-            out.append((hdr, est))
+            self._held.append((time.monotonic(), hdr, est))
+        out.extend(self._release())
+        return out
+
+    def _release(self, force: bool = False) -> list[tuple[EstimateHeader, np.ndarray]]:
+        """Held estimates whose earlier passes are all in (or overdue), in pass order."""
+        if not self._held:
+            return []
+        waiting = set(self.outstanding) | {p for p, _ in self._pending}
+        now = time.monotonic()
+        out, keep = [], []
+        for item in sorted(self._held, key=lambda h: h[1].pass_index):
+            t, hdr, est = item
+            if force or not any(w < hdr.pass_index for w in waiting) or now - t > self.reorder_timeout_s:
+                out.append((hdr, est))
+            else:
+                keep.append(item)
+        self._held = keep
         return out
 
     def drain(self, timeout_s: float) -> list[tuple[EstimateHeader, np.ndarray]]:
@@ -156,6 +246,7 @@ class ReconLink:
             if self.process is not None and self.process.poll() is not None:
                 break  # local worker died; nothing more will come
             out.extend(self.poll(min(0.2, max(0.0, deadline - time.monotonic()))))
+        out.extend(self._release(force=True))
         return out
 
     def worker_alive(self) -> bool:
@@ -174,3 +265,12 @@ class ReconLink:
                 self.process.wait(timeout=3)
         self.push.close(0)
         self.pull.close(0)
+        self._close_security()
+
+    def _close_security(self) -> None:
+        if self._auth is not None:
+            self._auth.stop()
+            self._auth = None
+        if self._own_ctx is not None:
+            self._own_ctx.term()
+            self._own_ctx = None

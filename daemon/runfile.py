@@ -42,8 +42,10 @@ class RunFile:
 
     def refresh(self) -> None:
         """See rows the writer appended since opening."""
-        for name in ("frames", "frame_info", "darks", "dark_info", "estimates", "estimate_info", "events"):
-            self.entry[name].refresh()
+        for name in ("frames", "frame_info", "darks", "dark_info", "estimates", "estimate_info", "events",
+                     "refused", "refused_info"):
+            if name in self.entry:
+                self.entry[name].refresh()
 
     def close(self) -> None:
         self._f.close()
@@ -121,6 +123,20 @@ class RunFile:
     def estimate_info(self) -> np.ndarray:
         return self.entry["estimate_info"][: self.estimate_count]
 
+    @property
+    def refused_count(self) -> int:
+        return self._pair_len("refused", "refused_info") if "refused" in self.entry else 0
+
+    def refused_info(self) -> np.ndarray:
+        n = self.refused_count
+        return self.entry["refused_info"][:n] if n else np.zeros(0, dtype=self.entry["frame_info"].dtype)
+
+    @property
+    def run_plan(self) -> dict | None:
+        """The plan the run was started with (passes, dark_frames, exposure_s, interval_s), if recorded."""
+        raw = self.entry.attrs.get("run_plan")
+        return json.loads(raw) if raw is not None else None
+
     def truth(self) -> np.ndarray | None:
         return self.entry["truth"][...] if "truth" in self.entry else None
 
@@ -148,6 +164,28 @@ class RunFile:
         return out
 
     def finished(self) -> bool:
-        """True when the log ends with a clean 'run finished'."""
-        ev = self.events()
-        return any(e["kind"] == "run_end" and e["message"].startswith("run finished") for e in ev)
+        """True when the last run_end event says 'run finished' (a resumed run may have stopped before)."""
+        end = self.last_end()
+        return end is not None and end["message"].startswith("run finished")
+
+    def last_end(self) -> dict | None:
+        """The last 'run_end' event, unless the run was resumed after it (then None: it is running or
+        was killed)."""
+        end = None
+        for e in self.events():
+            if e["kind"] == "run_end":
+                end = e
+            elif e["kind"] == "resume":
+                end = None
+        return end
+
+    def writer_pid(self) -> int | None:
+        """Process id of the last writer (from its 'writer' event), or None."""
+        pid = None
+        for e in self.events():
+            if e["kind"] == "writer":
+                try:
+                    pid = int(e["message"].split()[1])
+                except (IndexError, ValueError):
+                    pass
+        return pid

@@ -2,20 +2,56 @@
 
 For each pass and each mask k: the modulator shows mask k and acknowledges,
 the sequencer waits the settle time, the camera exposes, the frame comes back
-with its frame id and time stamp; stale frames (id not advancing) are refused
-and retaken; the frame is checked (saturation, photons), appended to the run
-file and published; when all K frames of a pass are in, the frame set goes to
-the reconstruction worker (never waiting for it) and estimates are stored and
-published as they come back.
+with its frame id and time stamp; the frame is checked (saturation, photons),
+appended to the run file (flushed) and published; when all K frames of a pass
+are in, the frame set goes to the reconstruction worker (never waiting for
+it) and estimates are stored and published as they come back.
 
 Safety: the interlock must read closed before the shutter opens; the shutter is
-closed for dark frames, while paused, at the end, and on any fault
-(``finally``). The sequencer runs in the calling thread; another thread steers
-it through ``RunControl`` (pause, resume, stop).
+closed for dark frames, while paused, between the frame sets of a time series,
+at the end, and on any fault (``finally``). The sequencer runs in the calling
+thread; another thread steers it through ``RunControl`` (pause, resume, stop).
+
+Fault handling (every fault is an event in the run log, and the frame it hit
+carries a flag; see store.FLAG_*). Settings in ``[recovery]`` and ``[checks]``:
+
+=========================== ==============================================================
+fault                       reaction
+=========================== ==============================================================
+camera timeout / bad frame  retried ``retries`` times with exponential backoff
+                            (``backoff_initial_s`` x ``backoff_factor``^n, at most
+                            ``backoff_max_s``), then the run pauses (alert)
+modulator no / bad reply    the command is resent the same way, then the run pauses
+device disconnected         reconnect attempts (``reconnect_attempts``, same backoff),
+                            then the run pauses; the frame in progress is retaken
+stale frame (id repeated)   refused and retaken (up to ``stale_retakes``, then pause)
+dropped frame (id gap)      the frame is refused (kept in /entry/refused) and retaken
+interlock open              shutter closed, run paused; it continues only when the
+                            interlock reads closed AND the user resumes
+shutter found closed after  the frame is refused (kept in /entry/refused) and retaken
+an exposure
+saturation above the limit  ``saturation_action``: 'flag' (keep, flagged), 'shorten'
+                            (exposure x ``saturation_shorten_factor``, frame retaken;
+                            the shorter exposure is kept for the rest of the run), or
+                            'stop' (frame kept, run stopped)
+cumulative dose             stop before the next frame would pass the limit
+                            (``max_dose_photons`` / ``max_dose_energy_per_area_j_per_m2``)
+free disk below the reserve stop safely before the disk is full (``[run] min_free_disk_mb``)
+write error / disk full     stop; everything flushed before is kept
+stop request (signal)       the frame in progress is finished (or its wait abandoned),
+                            the shutter closed, the file flushed and closed
+=========================== ==============================================================
+
+A pause closes the shutter and waits for ``RunControl.resume()`` (the service's
+'resume' request; SIGUSR1 for a foreground run). A pause not resumed within
+``[recovery] pause_timeout_s`` ends the run safely ('stopped'); it can be
+continued later with ``maskrun resume``. Frames of a frame set interrupted by
+a pause stay in the set (the set continues with the next mask after the pause).
 """
 
 from __future__ import annotations
 
+import collections
 import enum
 import threading
 import time
@@ -26,14 +62,26 @@ from typing import Callable
 import numpy as np
 
 from maskrun.drivers import DeviceError, DeviceTimeout
+from maskrun.drivers.errors import DeviceDisconnected, DeviceFault
 
 from .bench import Bench
 from .checks import CheckLimits, FrameIdTracker, check_frame, downsample_preview
+from .disk import MB, DiskGuard, DiskSpaceError
 from .recon_link import ReconLink
 from .store import (
+    FLAG_AFTER_PAUSE,
+    FLAG_AFTER_RESUME,
+    FLAG_EXPOSURE_SHORTENED,
+    FLAG_ID_GAP,
+    FLAG_MODULATOR_RETRIED,
+    FLAG_RECONNECTED,
     FLAG_RETAKEN,
+    FLAG_SATURATED,
+    FLAG_SHUTTER_CLOSED,
     FLAG_TIMEOUT_RETRIED,
     RunStore,
+    StoreError,
+    StoreWriteError,
     estimate_info_record,
     flag_names,
     frame_info_record,
@@ -57,6 +105,10 @@ class RunAborted(RuntimeError):
     """The run ended early; the message says why. Frames taken so far are in the file."""
 
 
+class DoseLimitStop(RunAborted):
+    """The cumulative dose reached its limit."""
+
+
 class InterlockOpen(RuntimeError):
     """The interlock reads open: the shutter may not open."""
 
@@ -68,10 +120,24 @@ class RunPlan:
     exposure_s: float
     output_path: Path
     interval_s: float | None = None  # start a pass every interval_s (time series); None = back to back
+    # resume (maskrun resume): passes before first_pass are complete in the file
+    first_pass: int = 0
+    first_set_index: int = 0
+    resumed: bool = False
+    dose_photons_before: float = 0.0  # incident photons of the frames already in the file
+
+    def to_record(self) -> dict:
+        """What is stored in the run file (attribute run_plan) so a resume can continue the same plan."""
+        return {"passes": self.passes, "dark_frames": self.dark_frames, "exposure_s": self.exposure_s,
+                "interval_s": self.interval_s}
 
 
 class RunControl:
-    """Thread-safe steering of a running sequencer."""
+    """Thread-safe steering of a running sequencer.
+
+    ``resume_hint`` is shown in the pause alert: how the user resumes this run
+    (the foreground sets 'kill -USR1 <pid>', the service its 'resume' request).
+    """
 
     def __init__(self):
         self._stop = threading.Event()
@@ -79,6 +145,7 @@ class RunControl:
         self._resume.set()
         self.stop_reason = ""
         self.pause_reason = ""
+        self.resume_hint = "resume the run (service: the 'resume' request)"
 
     def request_stop(self, reason: str = "stop requested") -> None:
         self.stop_reason = reason
@@ -127,6 +194,11 @@ class RunSummary:
     output_path: Path
     message: str = ""
     true_errors: list[float] = field(default_factory=list)
+    faults: dict[str, int] = field(default_factory=dict)  # fault kind -> count
+    recovered: int = 0  # faults that retries/reconnects/retakes got past
+    pauses: int = 0
+    refused: int = 0  # frames kept in /entry/refused
+    sets_in_file: int = 0  # complete frame sets in the file (with those of earlier sessions of a resumed run)
 
 
 @dataclass
@@ -145,6 +217,9 @@ class Progress:
     estimate_error_estimate: float = float("nan")
     estimate_residual: float = float("nan")
     message: str = ""
+
+
+_DEVICE_ATTR = {"camera": "camera", "modulator": "modulator", "safety": "safety"}
 
 
 class Sequencer:
@@ -166,6 +241,7 @@ class Sequencer:
         self.control = control or RunControl()
         self.observer = observer
         cfg = bench.config
+        self.rec = cfg.recovery
         self.k = bench.masks.shape[0]
         self.limits = CheckLimits(
             max_dn=bench.camera.max_dn,
@@ -177,18 +253,51 @@ class Sequencer:
         self.ids = FrameIdTracker()
         self.state = State.idle
         self.dark_dn: np.ndarray | float = bench.response.offset_dn
-        self.timeout_retries = 3
+        self.timeout_retries = self.rec.retries
+        self.exposure_s = float(plan.exposure_s)
         # running totals
         self.frames = self.darks = self.rejected = self.flagged = self.saturated = 0
         self.passes_complete = 0
-        self.set_index = 0
+        self.set_index = plan.first_set_index
         self.photons_total = 0.0
         self.estimates = 0
         self.true_errors: list[float] = []
+        self.fault_counts: collections.Counter[str] = collections.Counter()
+        self.recovered = 0
+        self.pauses = 0
+        self.refused = 0
         self.last_estimate = (float("nan"), float("nan"), float("nan"))  # true error, error estimate, residual
-        self._progress = Progress(State.idle, -1, -1, 0, plan.passes * self.k)
+        self._progress = Progress(State.idle, -1, -1, 0, (plan.passes - plan.first_pass) * self.k)
         # one reusable frame-set buffer (K, H, W) float32, grid orientation
         self._set_buffer = np.zeros((self.k, *bench.grid_shape), dtype=np.float32)
+        self._set_exposures = np.zeros(self.k, dtype=np.float64)
+        self._frame_flags = 0  # flags collected by recoveries while the current frame is taken
+        self._expect_gap = False  # a frame was lost inside the camera (corrupted): the next id jumps
+        self._after_resume = plan.resumed
+        self._stop_after_frame = ""
+        self._last_photons = 0.0
+        self._roi = None
+        self.disk = DiskGuard(Path(plan.output_path).parent, int(cfg.run.min_free_disk_mb * MB), store.bytes_per_frame)
+        self.dose = self._make_dose_ledger()
+
+    def _make_dose_ledger(self):
+        ch = self.bench.config.checks
+        if ch.max_dose_photons is None and ch.max_dose_energy_per_area_j_per_m2 is None:
+            return None
+        from .dose import DoseLedger
+
+        ledger = DoseLedger(
+            illuminated_area_m2=ch.illuminated_area_m2 or 1.0,
+            wavelength_m=self.bench.config.laser.wavelength_m,
+            max_energy_per_area_j_per_m2=ch.max_dose_energy_per_area_j_per_m2,
+            max_photons=ch.max_dose_photons,
+            limit_scope="run",
+        )
+        if self.plan.dose_photons_before > 0:
+            # frames already in the file (resume): counted, without raising here (checked before each frame)
+            ledger.run.photons = ledger.photons_on_sample(self.plan.dose_photons_before)
+            ledger.run.energy_per_area_j_per_m2 = ledger.energy_per_area(ledger.run.photons)
+        return ledger
 
     # --- events --------------------------------------------------------------
     def event(self, kind: str, message: str, level: str = "info") -> None:
@@ -197,6 +306,10 @@ class Sequencer:
             topic = "alert" if level in ("warning", "error") else "event"
             self.pub.publish(topic, {"kind": kind, "level": level, "message": message})
         self._progress.message = message
+
+    def _fault(self, kind: str, message: str, level: str = "warning") -> None:
+        self.fault_counts[kind] += 1
+        self.event(kind, message, level)
 
     def _set_state(self, state: State) -> None:
         self.state = state
@@ -218,7 +331,7 @@ class Sequencer:
             "mask_index": self._progress.mask_index,
             "masks": self.k,
             "frames": self.frames,
-            "frames_total": self.plan.passes * self.k,
+            "frames_total": (self.plan.passes - self.plan.first_pass) * self.k,
             "darks": self.darks,
             "rejected": self.rejected,
             "photons_total": self.photons_total,
@@ -227,6 +340,13 @@ class Sequencer:
             "error_estimate": ee,
             "residual": res,
             "output_path": str(self.plan.output_path),
+            "exposure_s": self.exposure_s,
+            "faults": dict(self.fault_counts),
+            "recovered": self.recovered,
+            "pauses": self.pauses,
+            "refused": self.refused,
+            "pause_reason": self.control.pause_reason if self.state == State.paused else "",
+            "message": self._progress.message,
         }
 
     # --- the run ---------------------------------------------------------------
@@ -237,25 +357,38 @@ class Sequencer:
         cam = self.bench.camera
         try:
             self._set_state(State.preparing)
-            cam.exposure_s = self.plan.exposure_s
-            self.event("run_start", f"run start: {self.plan.passes} passes x {self.k} masks, exposure {self.plan.exposure_s:g} s")
+            cam.exposure_s = self.exposure_s
+            try:
+                self._roi = cam.roi
+            except Exception:
+                self._roi = None
+            todo = self.plan.passes - self.plan.first_pass
+            what = (f"resumed at pass {self.plan.first_pass}: {todo} of {self.plan.passes} passes to go"
+                    if self.plan.resumed else f"{self.plan.passes} passes")
+            series = f", a frame set every {self.plan.interval_s:g} s" if self.plan.interval_s else ""
+            self.event("run_start", f"run start: {what} x {self.k} masks, exposure {self.exposure_s:g} s{series}")
             if self.plan.dark_frames:
                 self._take_darks(self.plan.dark_frames)
-            for p in range(self.plan.passes):
+            for p in range(self.plan.first_pass, self.plan.passes):
                 t_pass = time.monotonic()
                 self._take_pass(p)
                 self._collect_estimates(0.0)
                 if self.plan.interval_s and p + 1 < self.plan.passes:
-                    self.bench.safety.close_shutter()
-                    wait = self.plan.interval_s - (time.monotonic() - t_pass)
-                    if wait > 0:
-                        self.event("interval_wait", f"next pass in {wait:.1f} s (shutter closed)")
-                        self.control.sleep(wait)
+                    self._interval_wait(t_pass)
                 if self.control.stop_requested:
                     raise RunAborted(self.control.stop_reason)
             self._set_state(State.finishing)
             self.bench.safety.close_shutter()
             self._collect_estimates(timeout_s=30.0, drain=True)
+        except DiskSpaceError as exc:
+            final, message = State.stopped, str(exc)
+            self._fault_quietly("disk_low", message)
+        except StoreWriteError as exc:
+            final, message = (State.stopped if exc.disk_full else State.fault), str(exc)
+            self._fault_quietly("disk_full" if exc.disk_full else "write_error", message)
+        except DoseLimitStop as exc:
+            final, message = State.stopped, str(exc)
+            self._fault_quietly("dose_limit", message, "error")
         except RunAborted as exc:
             final, message = State.stopped, str(exc)
         except InterlockOpen as exc:
@@ -267,20 +400,208 @@ class Sequencer:
             raise
         finally:
             self._safe_state()
-            if final == State.finished:
-                self.event("run_end", f"run finished: {self.passes_complete} complete frame sets")
-            else:
-                level = "warning" if final == State.stopped else "error"
-                self.event("run_end", f"run {final.value}: {message}; {self.passes_complete} complete frame sets kept", level)
-            self.store.flush()
+            in_file = self.plan.first_pass + self.passes_complete
+            try:
+                if final == State.finished:
+                    self.event("run_end", f"run finished: {in_file} complete frame sets")
+                else:
+                    level = "warning" if final == State.stopped else "error"
+                    self.event("run_end", f"run {final.value}: {message}; {in_file} complete frame sets kept; "
+                               f"continue with: maskrun resume {self.plan.output_path}", level)
+                self.store.flush()
+            except StoreError:
+                pass  # the disk is full: the text log has the line; the file keeps what was flushed
             self._set_state(final)
         return self._summary(final, message, time.monotonic() - t0)
+
+    def _fault_quietly(self, kind: str, message: str, level: str = "error") -> None:
+        """Record a fault that ends the run; never raises (the store may be what failed)."""
+        self.fault_counts[kind] += 1
+        try:
+            self.event(kind, message, level)
+        except StoreError:
+            pass
 
     def _safe_state(self) -> None:
         try:
             self.bench.safety.close_shutter()
         except Exception as exc:
-            self.store.log("shutter_fault", f"closing the shutter failed: {exc}", "error")
+            try:
+                self.store.log("shutter_fault", f"closing the shutter failed: {exc}; close it by hand", "error")
+            except StoreError:
+                pass
+
+    def _interval_wait(self, t_pass: float) -> None:
+        """Time series: shutter closed until the next frame set is due; pauses and stops are honoured."""
+        self.bench.safety.close_shutter()
+        wait = self.plan.interval_s - (time.monotonic() - t_pass)
+        if wait <= 0:
+            self.event("interval_late", f"the frame set took {self.plan.interval_s - wait:.1f} s, longer than the "
+                       f"interval {self.plan.interval_s:g} s: the next starts at once", "warning")
+            return
+        self.event("interval_wait", f"next frame set in {wait:.1f} s (shutter closed)")
+        due = time.monotonic() + wait
+        while True:
+            self._check_pause()
+            left = due - time.monotonic()
+            if left <= 0:
+                return
+            self.control.sleep(min(left, 0.5))
+            self._collect_estimates(0.0)
+
+    # --- stop / pause ---------------------------------------------------------
+    def _check_stop(self) -> None:
+        if self.control.stop_requested:
+            raise RunAborted(self.control.stop_reason)
+
+    def _check_pause(self) -> None:
+        self._check_stop()
+        if self.control.pause_requested:
+            self._pause(self.control.pause_reason or "pause requested", kind="paused")
+
+    def _pause(self, reason: str, kind: str = "paused", interlock: bool = False) -> None:
+        """Close the shutter and wait for a resume (interlock pauses: and for the interlock to close).
+
+        Raises RunAborted on a stop request or when ``[recovery] pause_timeout_s`` passes."""
+        self._safe_state()
+        self.control.request_pause(reason)
+        self.pauses += 1
+        self._frame_flags |= FLAG_AFTER_PAUSE
+        timeout = self.rec.pause_timeout_s
+        limit = f"; the run stops by itself if not resumed within {timeout:g} s" if timeout else ""
+        self.event(kind, f"paused: {reason}; shutter closed. To continue: {self.control.resume_hint}{limit}", "error")
+        previous = self.state if self.state != State.paused else State.acquiring
+        self._set_state(State.paused)
+        t0 = time.monotonic()
+        while True:
+            while not self.control.wait_resume(0.2):
+                self._collect_estimates(0.0)
+                if timeout and time.monotonic() - t0 > timeout:
+                    raise RunAborted(f"paused for {timeout:g} s without a resume ({reason}): stopped safely")
+            self._check_stop()
+            if interlock:
+                try:
+                    closed = self.bench.safety.interlock_closed()
+                except DeviceError as exc:
+                    closed = False
+                    reason_now = f"cannot read the interlock ({exc})"
+                else:
+                    reason_now = "the interlock still reads OPEN"
+                if not closed:
+                    self.control.request_pause(reason)
+                    self.event("resume_refused", f"resume refused: {reason_now}; close it, then resume again", "warning")
+                    continue
+            break
+        self.event("resumed", f"resumed after a {time.monotonic() - t0:.1f} s pause ({reason})")
+        self._set_state(previous)
+
+    # --- devices with retries, backoff and reconnects ----------------------------
+    def _backoff(self):
+        delay = self.rec.backoff_initial_s
+        while True:
+            yield delay
+            delay = min(delay * self.rec.backoff_factor, self.rec.backoff_max_s)
+
+    def _call(self, device: str, fn, what: str):
+        """Run one device command; retry timeouts/bad replies with backoff, reconnect lost devices,
+        pause when retries or reconnects are used up. Returns fn's result."""
+        failures = 0
+        delays = self._backoff()
+        while True:
+            self._check_stop()
+            try:
+                result = fn()
+            except DeviceDisconnected as exc:
+                self._fault(f"{device}_disconnect", f"{what}: {device} link lost ({exc.detail}); reconnecting")
+                self._reconnect(device)
+                failures += 1
+                continue
+            except (DeviceTimeout, DeviceFault) as exc:
+                failures += 1
+                kind = f"{device}_no_ack" if isinstance(exc, DeviceTimeout) else f"{device}_bad_reply"
+                if failures > self.rec.retries:
+                    self._fault(kind, f"{what}: {exc.detail} ({failures} attempts)")
+                    self._pause(f"{device} does not answer ({what}: {exc.detail}) after {failures} attempts", kind="paused")
+                    failures, delays = 0, self._backoff()
+                    continue
+                delay = next(delays)
+                self._fault(kind, f"{what}: attempt {failures}: {exc.detail}; retrying in {delay:.2f} s")
+                self.control.sleep(delay)
+                continue
+            if failures:
+                self.recovered += 1
+                self.event("recovered", f"{what}: {device} answered after {failures} failed attempt(s)")
+                if device == "modulator":
+                    self._frame_flags |= FLAG_MODULATOR_RETRIED
+            return result
+
+    def _reconnect(self, device: str) -> None:
+        """Reopen a lost device (backoff between attempts); pause when ``reconnect_attempts`` fail."""
+        attempts = 0
+        delays = self._backoff()
+        self._frame_flags |= FLAG_RECONNECTED
+        while True:
+            self._check_stop()
+            attempts += 1
+            try:
+                self._reopen(device)
+            except DeviceError as exc:
+                if attempts >= max(1, self.rec.reconnect_attempts):
+                    self._pause(f"{device} lost and {attempts} reconnect attempts failed ({exc.detail}); "
+                                f"check its cable and power", kind="paused")
+                    attempts, delays = 0, self._backoff()
+                else:
+                    self.control.sleep(next(delays))
+                continue
+            self.recovered += 1
+            self.event(f"{device}_reconnected", f"{device} reconnected after {attempts} attempt(s)")
+            return
+
+    def _reopen(self, device: str) -> None:
+        b = self.bench
+        if device == "camera":
+            cam = b.camera
+            try:
+                cam.close()
+            except Exception:
+                pass
+            cam.open()
+            cam.exposure_s = self.exposure_s
+            if self._roi is not None:
+                cam.roi = self._roi
+            self.ids = FrameIdTracker()  # a reconnected camera may restart its counter
+            return
+        dev = getattr(b, _DEVICE_ATTR[device])
+        if hasattr(dev, "reconnect"):
+            dev.reconnect()
+        else:
+            try:
+                dev.close()
+            except Exception:
+                pass
+            dev.open()
+            if device == "modulator":
+                dev.load(b.masks)
+        if device == "safety":
+            dev.close_shutter()  # a known state; the box closes it by itself when its link drops
+
+    # --- light ------------------------------------------------------------------
+    def _ensure_light(self) -> None:
+        """Interlock closed (else: shutter closed and pause until it closes and the user resumes), shutter open."""
+        safety = self.bench.safety
+        while True:
+            if not self._call("safety", safety.interlock_closed, "reading the interlock"):
+                self._safe_state()
+                self._fault("interlock_open", "the interlock reads OPEN: shutter closed, run paused", "error")
+                self._pause("the interlock is open (door or enclosure)", kind="paused", interlock=True)
+                continue
+            if self._call("safety", safety.shutter_is_open, "reading the shutter"):
+                return
+            try:
+                self._call("safety", self._open_shutter, "opening the shutter")
+                return
+            except InterlockOpen:
+                continue  # it opened in between: pause above
 
     def _open_shutter(self) -> None:
         if not self.bench.safety.interlock_closed():
@@ -292,104 +613,192 @@ class Sequencer:
             self.bench.safety.open_shutter()
             self.event("shutter", "shutter opened (interlock closed)")
 
-    def _check_pause(self) -> None:
-        if self.control.stop_requested:
-            raise RunAborted(self.control.stop_reason)
-        if self.control.pause_requested:
-            self.bench.safety.close_shutter()
-            self.event("paused", f"paused: {self.control.pause_reason}; shutter closed")
-            self._set_state(State.paused)
-            while not self.control.wait_resume(0.2):
-                self._collect_estimates(0.0)
-            if self.control.stop_requested:
-                raise RunAborted(self.control.stop_reason)
-            self.event("resumed", "resumed")
-            self._set_state(State.acquiring)
-
-    def _grab(self, timeout_s: float):
-        """Trigger and grab one frame, retrying timeouts with backoff. Returns (frame, attempts, flags, t_request)."""
+    # --- frames -----------------------------------------------------------------
+    def _grab(self, timeout_s: float, p: int = -1, k: int = -1, set_index: int = -1):
+        """Trigger and grab one frame, retrying timeouts/faults with backoff, reconnecting a lost camera,
+        refusing stale frames and frames after an id gap. Returns (frame, attempts, flags, t_request)."""
         cam = self.bench.camera
         flags = 0
-        attempts = 0
-        delay = 0.05
+        attempts = failures = stale = 0
+        delays = self._backoff()
         while True:
+            self._check_stop()
             attempts += 1
             t_req = time.time()
             try:
                 cam.trigger()
                 frame = cam.grab(timeout_s)
-            except DeviceTimeout as exc:
-                if attempts > self.timeout_retries:
-                    raise
-                flags |= FLAG_TIMEOUT_RETRIED
-                self.event("camera_timeout", f"attempt {attempts}: {exc.detail}; retrying in {delay:.2f} s", "warning")
+            except DeviceDisconnected as exc:
+                self._fault("camera_disconnect", f"camera link lost ({exc.detail}); reconnecting")
+                self._reconnect("camera")
+                flags |= FLAG_RETAKEN
+                continue
+            except (DeviceTimeout, DeviceFault) as exc:
+                failures += 1
+                timeout = isinstance(exc, DeviceTimeout)
+                flags |= FLAG_TIMEOUT_RETRIED if timeout else FLAG_RETAKEN
+                self._expect_gap = self._expect_gap or not timeout  # a corrupted frame used up an id
+                kind = "camera_timeout" if timeout else "camera_fault"
+                if failures > self.rec.retries:
+                    self._fault(kind, f"attempt {attempts}: {exc.detail}")
+                    self._pause(f"the camera gave no good frame in {failures} attempts ({exc.detail})", kind="paused")
+                    failures, delays = 0, self._backoff()
+                    continue
+                delay = next(delays)
+                self._fault(kind, f"attempt {attempts}: {exc.detail}; retrying in {delay:.2f} s")
                 self.control.sleep(delay)
-                delay *= 2
                 continue
             kind = self.ids.classify(frame.frame_id)
             if kind == "stale":
                 self.rejected += 1
-                if attempts > self.bench.config.checks.stale_retakes:
-                    raise DeviceError(
-                        f"camera keeps delivering stale frames (id {frame.frame_id} did not advance) "
-                        f"after {attempts} attempts",
-                        device="camera",
-                        hint="check the camera's trigger and frame buffer settings",
-                    )
+                stale += 1
                 flags |= FLAG_RETAKEN
-                self.event("stale_frame", f"frame id {frame.frame_id} did not advance: refused and retaken", "warning")
+                if stale > self.bench.config.checks.stale_retakes:
+                    self._fault("stale_frame", f"frame id {frame.frame_id} did not advance, {stale} times in a row")
+                    self._pause(f"the camera keeps delivering stale frames (id {frame.frame_id}); check its "
+                                "trigger and frame buffer settings", kind="paused")
+                    stale = 0
+                    continue
+                self._fault("stale_frame", f"frame id {frame.frame_id} did not advance: refused and retaken")
                 continue
             if kind == "gap":
-                flags |= self.ids.flag_for(kind)
-                self.event("frame_id_gap", f"camera frame id jumped to {frame.frame_id}: the camera dropped a frame", "warning")
+                flags |= FLAG_ID_GAP
+                if not self._expect_gap:
+                    self.rejected += 1
+                    flags |= FLAG_RETAKEN
+                    self._refuse(frame, p, k, set_index, t_req, flags, attempts)
+                    self._fault("frame_dropped", f"camera frame id jumped to {frame.frame_id}: a frame was dropped; "
+                                "this frame's origin is uncertain: kept in /entry/refused and retaken")
+                    continue
+                self.event("frame_id_gap", f"frame id jumped to {frame.frame_id} after the lost frame (expected)")
+            self._expect_gap = False
+            if failures or stale:
+                self.recovered += 1
+                self.event("recovered", f"camera delivered a good frame after {attempts} attempt(s)")
             return frame, attempts, flags, t_req
+
+    def _refuse(self, frame, p, k, set_index, t_req, flags, attempts, chk=None) -> None:
+        """Keep a frame that will not be used in /entry/refused (never lose what was taken)."""
+        self.refused += 1
+        peak = int(frame.pixels.max())
+        self.store.append_refused(
+            frame.pixels,
+            frame_info_record(
+                pass_index=p, set_index=set_index, mask_index=k, frame_id=frame.frame_id, t_request_s=t_req,
+                t_frame_s=frame.timestamp_s, exposure_s=frame.exposure_s, peak_dn=peak,
+                saturated_fraction=chk.saturated_fraction if chk else 0.0, photons=chk.photons if chk else 0.0,
+                flags=flags, attempts=attempts,
+            ),
+        )
+        self.store.flush()
 
     def _take_darks(self, count: int) -> None:
         self._set_state(State.darks)
         self.bench.safety.close_shutter()
-        timeout = self.plan.exposure_s + self.bench.config.camera.grab_timeout_s
         acc = np.zeros(self.bench.grid_shape, dtype=np.float64)
         for i in range(count):
             self._check_pause()
+            self.disk.check()
+            self._frame_flags = 0
+            timeout = self.exposure_s + self.bench.config.camera.grab_timeout_s
             frame, attempts, flags, t_req = self._grab(timeout)
             self.store.append_dark(
                 frame.pixels,
                 frame_info_record(
                     pass_index=-1, set_index=-1, mask_index=-1, frame_id=frame.frame_id, t_request_s=t_req,
                     t_frame_s=frame.timestamp_s, exposure_s=frame.exposure_s, peak_dn=int(frame.pixels.max()),
-                    flags=flags, attempts=attempts,
+                    flags=flags | self._frame_flags, attempts=attempts,
                 ),
             )
+            self.store.flush()
             acc += frame.pixels
             self.darks += 1
         self.dark_dn = (acc / count).astype(np.float32)
-        self.store.flush()
         self.event("darks", f"{count} dark frames taken, mean level {float(self.dark_dn.mean()):.1f} DN")
+
+    def _check_dose_before(self) -> None:
+        if self.dose is None:
+            return
+        if self.dose.remaining_photons() <= 0 or (self._last_photons > 0 and self.dose.would_exceed(self._last_photons)):
+            t = self.dose.run
+            raise DoseLimitStop(
+                f"dose limit: the next frame (about {self._last_photons:.3g} photons) would pass the limit "
+                f"(so far {t.photons:.4g} photons, {t.energy_per_area_j_per_m2:.4g} J/m^2 on the sample); "
+                "stopped before exposing. Frames taken are kept; raise the limit or move to a fresh position"
+            )
+
+    def _account_dose(self, photons: float) -> None:
+        photons = max(float(photons), 0.0)
+        self._last_photons = photons  # the prediction for the next frame
+        if self.dose is None:
+            return
+        from .dose import DoseLimitExceeded
+
+        try:
+            self.dose.add(photons)
+        except DoseLimitExceeded as exc:
+            raise DoseLimitStop(str(exc)) from None
+
+    def _take_frame(self, p: int, k: int, set_index: int):
+        """One good frame of mask k: returns (frame, check, flags, attempts, t_request). Stores refused attempts."""
+        cam = self.bench.camera
+        mod = self.bench.modulator
+        action = self.bench.config.checks.saturation_action
+        shortenings = 0
+        self._frame_flags = FLAG_AFTER_RESUME if self._after_resume else 0
+        while True:
+            self._check_pause()
+            self.disk.check()
+            self._check_dose_before()
+            self._ensure_light()
+            self._call("modulator", lambda: mod.show(k), f"showing mask {k}")
+            if mod.settle_s > 0:
+                time.sleep(mod.settle_s)
+            timeout = self.exposure_s + self.bench.config.camera.grab_timeout_s
+            frame, attempts, flags, t_req = self._grab(timeout, p, k, set_index)
+            flags |= self._frame_flags
+            if not self._call("safety", self.bench.safety.shutter_is_open, "reading the shutter"):
+                self._refuse(frame, p, k, set_index, t_req, flags | FLAG_SHUTTER_CLOSED, attempts)
+                self._frame_flags |= FLAG_RETAKEN
+                self._fault("shutter_closed", f"pass {p} mask {k}: the shutter was found closed after the exposure "
+                            "(interlock?): frame kept in /entry/refused and retaken")
+                continue
+            chk = check_frame(frame.pixels, self.dark_dn, self.bench.response, self.limits)
+            flags |= chk.flags
+            if chk.saturated_fraction > self.limits.max_saturated_fraction and action != "flag":
+                if action == "stop":
+                    self._stop_after_frame = (
+                        f"saturation: {chk.saturated_fraction:.2%} of the pixels of pass {p} mask {k} saturated "
+                        f"(limit {self.limits.max_saturated_fraction:.2%}); stopped as configured "
+                        "(saturation_action = 'stop'). Lower the exposure or attenuate the beam")
+                elif shortenings < self.bench.config.checks.saturation_max_shortenings:
+                    new = self.exposure_s * self.bench.config.checks.saturation_shorten_factor
+                    try:
+                        cam.exposure_s = new
+                    except DeviceError as exc:
+                        self.event("saturation", f"cannot shorten the exposure below {self.exposure_s:g} s "
+                                   f"({exc.detail}): frame kept, flagged", "warning")
+                    else:
+                        self._account_dose(chk.photons)
+                        self._refuse(frame, p, k, set_index, t_req, flags, attempts, chk)
+                        self._fault("exposure_shortened",
+                                    f"pass {p} mask {k}: {chk.saturated_fraction:.2%} saturated: exposure "
+                                    f"{self.exposure_s:g} s -> {new:g} s, frame retaken")
+                        self.exposure_s = new
+                        shortenings += 1
+                        self._frame_flags |= FLAG_EXPOSURE_SHORTENED | FLAG_RETAKEN
+                        continue
+            return frame, chk, flags, attempts, t_req
 
     def _take_pass(self, p: int) -> None:
         self._check_pause()
-        self._open_shutter()
         self._set_state(State.acquiring)
         self._progress.pass_index = p
-        cam = self.bench.camera
-        mod = self.bench.modulator
         resp = self.bench.response
-        timeout = self.plan.exposure_s + self.bench.config.camera.grab_timeout_s
         set_index = self.set_index
         self.set_index += 1
-        exposure_used = self.plan.exposure_s
         for k in range(self.k):
-            self._check_pause()
-            if not self.bench.safety.interlock_closed():
-                self.bench.safety.close_shutter()
-                raise InterlockOpen("interlock opened during the pass: shutter closed, run stopped safely")
-            mod.show(k)
-            if mod.settle_s > 0:
-                time.sleep(mod.settle_s)
-            frame, attempts, flags, t_req = self._grab(timeout)
-            chk = check_frame(frame.pixels, self.dark_dn, resp, self.limits)
-            flags |= chk.flags
-            exposure_used = frame.exposure_s
+            frame, chk, flags, attempts, t_req = self._take_frame(p, k, set_index)
             idx = self.store.append_frame(
                 frame.pixels,
                 frame_info_record(
@@ -404,12 +813,13 @@ class Sequencer:
             self.photons_total += max(chk.photons, 0.0)
             if flags:
                 self.flagged += 1
-            if chk.saturated_fraction > self.limits.max_saturated_fraction:
+            if chk.flags & FLAG_SATURATED:
                 self.saturated += 1
             if chk.problems:
                 self.event("check", f"pass {p} mask {k}: " + "; ".join(chk.problems), "warning")
             # frame set buffer: dark-subtracted electrons, zero frequency moved to [0, 0]
             self._set_buffer[k] = np.fft.ifftshift(resp.electrons(frame.pixels, self.dark_dn))
+            self._set_exposures[k] = frame.exposure_s
             if self.pub is not None:
                 meta = {"pass_index": p, "mask_index": k, "frame_index": idx, "frame_id": frame.frame_id,
                         "exposure_s": frame.exposure_s, "saturated_fraction": chk.saturated_fraction,
@@ -422,14 +832,23 @@ class Sequencer:
             pr.mask_index, pr.frames_done = k, self.frames
             pr.photons_last, pr.saturated_last, pr.photons_total = chk.photons, chk.saturated_fraction, self.photons_total
             self._notify()
+            self._account_dose(chk.photons)
+            if self._stop_after_frame:
+                self._fault("saturation_stop", self._stop_after_frame, "error")
+                raise RunAborted(self._stop_after_frame)
             self._collect_estimates(0.0)
         self.passes_complete += 1
+        self._after_resume = False
         if self.pub is not None:
             self.pub.publish("frameset", {"pass_index": p, "set_index": set_index, "frames": self.k,
                                           "photons_total": self.photons_total})
         if self.recon is not None:
-            intens = np.maximum(self._set_buffer, 0.0)  # a copy: the buffer is reused for the next pass
-            if not self.recon.submit(p, intens, exposure_used, resp.quantum_efficiency):
+            # a copy (the buffer is reused), every frame scaled to the set's shortest exposure
+            ref = float(self._set_exposures.min())
+            intens = np.maximum(self._set_buffer, 0.0)
+            if np.any(self._set_exposures != ref):
+                intens *= (ref / self._set_exposures).astype(np.float32)[:, None, None]
+            if not self.recon.submit(p, intens, ref, resp.quantum_efficiency):
                 self.event("recon_behind", f"reconstruction is behind: frame set {p} skipped for the live estimate "
                            "(it is in the run file)", "warning")
 
@@ -486,4 +905,9 @@ class Sequencer:
             output_path=self.plan.output_path,
             message=message,
             true_errors=list(self.true_errors),
+            faults=dict(self.fault_counts),
+            recovered=self.recovered,
+            pauses=self.pauses,
+            refused=self.refused,
+            sets_in_file=self.plan.first_pass + self.passes_complete,
         )

@@ -40,7 +40,9 @@ def make_recon_link(bench: Bench, zmq_context: zmq.Context) -> ReconLink | None:
         return None
     spec = {"family": cfg.masks.family, "count": cfg.masks.count, "shape": bench.grid_shape,
             "seed": cfg.masks.seed, "levels": cfg.masks.levels}
-    return ReconLink(zmq_context, bench.masks, spec, cfg.reconstruction)
+    from .remote_workers import link_options
+
+    return ReconLink(zmq_context, bench.masks, spec, cfg.reconstruction, **link_options(cfg))
 
 
 def execute_run(

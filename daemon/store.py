@@ -11,6 +11,9 @@ Layout (format ``maskrun-run`` version 1; documented in README.md):
     /entry/estimates            (P, H, W) complex64, sqrt(incident photons per second)
     /entry/estimate_info        (P,) compound (ESTIMATE_INFO_DTYPE)
     /entry/events               (E,) compound: the append-only run log (EVENT_DTYPE)
+    /entry/refused              (R, H, W) frames taken but refused for the frame set (id gap, saturated
+                                and retaken shorter, shutter found closed); kept, never used
+    /entry/refused_info         (R,) compound, same fields as frame_info; ``flags`` says why
     /entry/truth                (H, W) complex128, simulated benches only, same units as estimates
 
 Attributes of /entry (written once, before the file goes into single-writer /
@@ -23,6 +26,15 @@ SWMR mode before the first frame, then flushed after every frame. Datasets grow
 by resizing, never by creating new objects, so a reader (or a reader after a
 SIGKILL) always sees a consistent file whose row counts may differ by at most
 the frame in progress; readers use the shortest of frames/frame_info.
+
+Attributes cannot change once SWMR mode starts, so everything that happens
+later (start, acknowledgement, faults, pauses, resumes, the end of the run) is
+an event row; the run's outcome is the last ``run_end`` event. Each event is
+also appended to a plain-text log beside the file (``daemon.runlog``).
+
+A write failure (disk full, I/O error) raises ``StoreWriteError``; what was
+flushed before it stays readable. A file left open by a killed writer is
+repaired for appending by ``daemon.recovery`` (copy, verify, atomic replace).
 """
 
 from __future__ import annotations
@@ -48,6 +60,10 @@ FLAG_ID_GAP = 1 << 4  # the camera frame id jumped (a frame was dropped by the c
 FLAG_TIMEOUT_RETRIED = 1 << 5  # one or more grab timeouts before this frame
 FLAG_EXPOSURE_SHORTENED = 1 << 6  # exposure was shortened after saturation
 FLAG_AFTER_RESUME = 1 << 7  # first frame set after a resume (a gap in time precedes it)
+FLAG_MODULATOR_RETRIED = 1 << 8  # the modulator needed more than one command to show this mask
+FLAG_RECONNECTED = 1 << 9  # a device was reconnected while taking this frame
+FLAG_AFTER_PAUSE = 1 << 10  # the run was paused (fault or request) while taking this frame
+FLAG_SHUTTER_CLOSED = 1 << 11  # refused frame: the shutter was found closed after the exposure
 
 FLAG_NAMES = {
     FLAG_SATURATED: "saturated",
@@ -58,6 +74,10 @@ FLAG_NAMES = {
     FLAG_TIMEOUT_RETRIED: "timeout_retried",
     FLAG_EXPOSURE_SHORTENED: "exposure_shortened",
     FLAG_AFTER_RESUME: "after_resume",
+    FLAG_MODULATOR_RETRIED: "modulator_retried",
+    FLAG_RECONNECTED: "reconnected",
+    FLAG_AFTER_PAUSE: "after_pause",
+    FLAG_SHUTTER_CLOSED: "shutter_closed",
 }
 
 FRAME_INFO_DTYPE = np.dtype(
@@ -99,6 +119,19 @@ class StoreError(OSError):
     """The run file cannot be created, written or read."""
 
 
+class StoreWriteError(StoreError):
+    """Appending to the run file failed (``disk_full`` True for ENOSPC). Rows flushed before are intact."""
+
+    def __init__(self, message: str, disk_full: bool = False):
+        super().__init__(message)
+        self.disk_full = disk_full
+
+
+def _is_disk_full(exc: BaseException) -> bool:
+    text = str(exc)
+    return getattr(exc, "errno", None) == 28 or "No space left" in text or "errno = 28" in text
+
+
 @dataclass
 class RunHeader:
     """Everything written once when the file is created."""
@@ -125,9 +158,12 @@ def _encode(text: str, nbytes: int) -> bytes:
 class RunStore:
     """Writer of one run file. Not thread-safe: one writer thread owns it."""
 
-    def __init__(self, path: Path, h5: h5py.File):
+    def __init__(self, path: Path, h5: h5py.File, text_log: bool = True):
+        from .runlog import TextLog, text_log_path
+
         self.path = Path(path)
         self._f = h5
+        self.text_log = TextLog(text_log_path(path)) if text_log else None
         e = h5["entry"]
         self._frames = e["frames"]
         self._frame_info = e["frame_info"]
@@ -136,6 +172,10 @@ class RunStore:
         self._estimates = e["estimates"]
         self._estimate_info = e["estimate_info"]
         self._events = e["events"]
+        self._refused = e.get("refused")  # absent in files written before it was added
+        self._refused_info = e.get("refused_info")
+        self.refused_count = (min(self._refused.shape[0], self._refused_info.shape[0])
+                              if self._refused is not None else 0)
         self.frame_count = min(self._frames.shape[0], self._frame_info.shape[0])
         self.dark_count = min(self._darks.shape[0], self._dark_info.shape[0])
         self.estimate_count = min(self._estimates.shape[0], self._estimate_info.shape[0])
@@ -148,15 +188,17 @@ class RunStore:
             (self._dark_info, self.dark_count),
             (self._estimates, self.estimate_count),
             (self._estimate_info, self.estimate_count),
+            (self._refused, self.refused_count),
+            (self._refused_info, self.refused_count),
         ):
-            if ds.shape[0] != n:
+            if ds is not None and ds.shape[0] != n:
                 ds.resize(n, axis=0)
         self.frame_shape = tuple(self._frames.shape[1:])
         self.bytes_per_frame = int(np.prod(self.frame_shape)) * self._frames.dtype.itemsize
 
     # --- creation ------------------------------------------------------------
     @classmethod
-    def create(cls, path: str | Path, header: RunHeader) -> RunStore:
+    def create(cls, path: str | Path, header: RunHeader, text_log: bool = True) -> RunStore:
         """Create a new run file. Refuses to overwrite. Removes the file again if creation fails."""
         path = Path(path)
         if path.exists():
@@ -179,7 +221,7 @@ class RunStore:
             f.close()
             path.unlink(missing_ok=True)
             raise
-        return cls(path, f)
+        return cls(path, f, text_log)
 
     @staticmethod
     def _write_layout(f: h5py.File, h: RunHeader) -> None:
@@ -214,11 +256,13 @@ class RunStore:
         )
         e.create_dataset("estimate_info", (0,), maxshape=(None,), chunks=(64,), dtype=ESTIMATE_INFO_DTYPE)
         e.create_dataset("events", (0,), maxshape=(None,), chunks=(128,), dtype=EVENT_DTYPE)
+        e.create_dataset("refused", (0, rows, cols), maxshape=(None, rows, cols), chunks=(1, rows, cols), dtype=fd)
+        e.create_dataset("refused_info", (0,), maxshape=(None,), chunks=(64,), dtype=FRAME_INFO_DTYPE)
         if h.truth is not None:
             e.create_dataset("truth", data=np.asarray(h.truth, dtype=np.complex128))
 
     @classmethod
-    def reopen(cls, path: str | Path) -> RunStore:
+    def reopen(cls, path: str | Path, text_log: bool = True) -> RunStore:
         """Open an existing run file to append to it (resume). The file must have been closed cleanly
         or be repaired first (see daemon.recovery)."""
         path = Path(path)
@@ -229,19 +273,32 @@ class RunStore:
         if f.attrs.get("format") != FORMAT_NAME:
             f.close()
             raise StoreError(f"{path}: not a maskrun run file")
-        store = cls(path, f)
-        f.swmr_mode = True
+        try:
+            store = cls(path, f, text_log)
+            f.swmr_mode = True
+        except Exception:
+            f.close()
+            raise
         return store
 
     # --- appending ---------------------------------------------------------------
     def _append(self, data_ds, info_ds, count: int, pixels: np.ndarray, info: np.void | tuple) -> int:
         if pixels.shape != self.frame_shape:
             raise StoreError(f"{self.path}: frame shape {pixels.shape} does not match the run's {self.frame_shape}")
-        data_ds.resize(count + 1, axis=0)
-        data_ds[count] = pixels
-        info_ds.resize(count + 1, axis=0)
-        info_ds[count] = info
+        try:
+            data_ds.resize(count + 1, axis=0)
+            data_ds[count] = pixels
+            info_ds.resize(count + 1, axis=0)
+            info_ds[count] = info
+        except (OSError, RuntimeError) as exc:
+            raise self._write_error(exc) from None
         return count
+
+    def _write_error(self, exc: BaseException) -> StoreWriteError:
+        full = _is_disk_full(exc)
+        why = "the disk is full" if full else f"{exc}"
+        return StoreWriteError(f"{self.path}: writing the run file failed: {why}. Everything flushed before "
+                               "is kept; free some space, then continue with 'maskrun resume'", disk_full=full)
 
     def append_frame(self, pixels: np.ndarray, info) -> int:
         """Append one frame and its info row (a FRAME_INFO_DTYPE record or tuple). Returns its index."""
@@ -254,28 +311,58 @@ class RunStore:
         self.dark_count += 1
         return i
 
+    def append_refused(self, pixels: np.ndarray, info) -> int | None:
+        """Keep a frame that was taken but not used (``info['flags']`` says why). None on old files."""
+        if self._refused is None:
+            return None
+        i = self._append(self._refused, self._refused_info, self.refused_count, pixels, info)
+        self.refused_count += 1
+        return i
+
     def append_estimate(self, estimate: np.ndarray, info) -> int:
         i = self._append(self._estimates, self._estimate_info, self.estimate_count, estimate.astype(np.complex64), info)
         self.estimate_count += 1
         return i
 
     def log(self, kind: str, message: str, level: str = "info", t_s: float | None = None) -> None:
-        """Append one event to the run log inside the file (flushed at once)."""
+        """Append one event to the run log inside the file (flushed at once) and to the text log beside it.
+
+        The text line is written first, so an event survives in the text log even when the HDF5
+        write fails (disk full); that failure raises StoreWriteError."""
+        t_s = t_s if t_s is not None else time.time()
+        if self.text_log is not None:
+            self.text_log.write(t_s, level, kind, message)
         rec = np.array(
-            [(t_s if t_s is not None else time.time(), level.encode()[:8], kind.encode()[:24], _encode(message, EVENT_MESSAGE_BYTES))],
+            [(t_s, level.encode()[:8], kind.encode()[:24], _encode(message, EVENT_MESSAGE_BYTES))],
             dtype=EVENT_DTYPE,
         )
-        self._events.resize(self.event_count + 1, axis=0)
-        self._events[self.event_count] = rec[0]
+        try:
+            self._events.resize(self.event_count + 1, axis=0)
+            self._events[self.event_count] = rec[0]
+        except (OSError, RuntimeError) as exc:
+            raise self._write_error(exc) from None
         self.event_count += 1
         self.flush()
 
     def flush(self) -> None:
-        self._f.flush()
+        try:
+            self._f.flush()
+        except (OSError, RuntimeError) as exc:
+            raise self._write_error(exc) from None
 
     def close(self) -> None:
+        """Flush and close. After a write failure the close is still attempted; its error is raised
+        as StoreWriteError only after the handle is released."""
         if self._f.id.valid:
-            self._f.flush()
+            try:
+                self._f.flush()
+            except (OSError, RuntimeError) as exc:
+                err = self._write_error(exc)
+                try:
+                    self._f.close()
+                except Exception:
+                    pass
+                raise err from None
             self._f.close()
 
     @property

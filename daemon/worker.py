@@ -61,6 +61,10 @@ class FrameSetHeader(BaseModel):
     estimate_scale: float  # multiply the estimate by this to get sqrt(incident photons / s)
     masks: MaskSpec
     options: ReconOptions
+    # Set by the daemon when it accumulates (several workers may share a run): the intensities are
+    # already the mean of this many frame sets (accumulate: all so far; follow: the window), and the
+    # worker uses them as they are instead of folding them into a running mean of its own.
+    data_passes: int | None = None
 
 
 class EstimateHeader(BaseModel):
@@ -98,14 +102,23 @@ def build_masks(spec: MaskSpec, file_masks: np.ndarray | None = None) -> np.ndar
 class WorkerLoop:
     """Receive frame sets, update an IncrementalEngine per run, send estimates back."""
 
-    def __init__(self, frames_address: str, results_address: str, *, context: zmq.Context | None = None, name: str = ""):
+    def __init__(self, frames_address: str, results_address: str, *, context: zmq.Context | None = None, name: str = "",
+                 client_keys=None, obey_stop: bool = True):
+        """client_keys: security.ClientKeys for a CURVE daemon; obey_stop=False for a remote worker that
+        serves many runs (a stop message is then ignored; end it with a signal)."""
         self.ctx = context or zmq.Context.instance()
+        self.obey_stop = obey_stop
         self.pull = self.ctx.socket(zmq.PULL)
         self.pull.setsockopt(zmq.MAXMSGSIZE, MAX_MESSAGE_BYTES)
         self.pull.setsockopt(zmq.LINGER, 0)
-        self.pull.connect(frames_address)
         self.push = self.ctx.socket(zmq.PUSH)
         self.push.setsockopt(zmq.LINGER, 2000)
+        if client_keys is not None:
+            from .security import apply_client_keys
+
+            apply_client_keys(self.pull, client_keys)
+            apply_client_keys(self.push, client_keys)
+        self.pull.connect(frames_address)
         self.push.connect(results_address)
         self.name = name or f"worker-{os.getpid()}"
         self._engine = None
@@ -118,10 +131,11 @@ class WorkerLoop:
         key = (hdr.run_id, hdr.masks.sha256, hdr.options.model_dump_json())
         if self._engine is None or key != self._engine_key:
             o = hdr.options
+            daemon_accumulates = hdr.data_passes is not None  # then the engine only holds the latest data
             self._engine = IncrementalEngine(
                 masks,
-                mode=o.mode,
-                window=o.window,
+                mode="follow" if daemon_accumulates else o.mode,
+                window=1 if daemon_accumulates else o.window,
                 iterations_per_update=o.iterations_per_update,
                 time_budget_s=o.time_budget_s,
                 method=o.method,
@@ -133,7 +147,7 @@ class WorkerLoop:
         """Process one message; False when told to stop."""
         kind = parts[0]
         if kind == b"stop":
-            return False
+            return not self.obey_stop
         if kind != b"frameset" or len(parts) not in (3, 4):
             print(f"{self.name}: ignoring malformed message ({len(parts)} parts, kind {kind[:20]!r})", file=sys.stderr)
             return True
@@ -144,8 +158,17 @@ class WorkerLoop:
             file_masks = np.frombuffer(parts[3], dtype=np.complex64).reshape(hdr.shape)
         masks = build_masks(hdr.masks, file_masks)
         engine = self._engine_for(hdr, masks)
+        if hdr.data_passes is not None and hdr.options.mode == "accumulate" and hdr.options.method == "auto":
+            # accumulate mode's 'auto': hybrid from scratch, then error-reduction polish from the warm start
+            engine.method = "hybrid" if engine.estimate is None else "er"
         t0 = time.perf_counter()
         upd = engine.update(intensities)
+        if hdr.data_passes is not None:  # the data are a mean over data_passes frame sets
+            from maskrun.reconstruct import shot_noise_relative_error
+
+            upd.passes_used = hdr.data_passes
+            upd.photons = upd.photons * hdr.data_passes
+            upd.error_estimate = shot_noise_relative_error(engine.pixels, upd.photons)
         est = (np.asarray(upd.estimate) * hdr.estimate_scale).astype(np.complex64)
         out = EstimateHeader(
             run_id=hdr.run_id,
@@ -204,7 +227,9 @@ def main(argv: list[str] | None = None) -> int:
     args = ap.parse_args(argv)
     # one core for the worker: the acquisition keeps the other
     os.environ.setdefault("OMP_NUM_THREADS", "1")
-    loop = WorkerLoop(args.frames, args.results, name=args.name)
+    from .remote_workers import client_keys_from_env
+
+    loop = WorkerLoop(args.frames, args.results, name=args.name, client_keys=client_keys_from_env())
     try:
         loop.serve(args.idle_exit_s, args.parent_pid)
     except KeyboardInterrupt:

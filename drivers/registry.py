@@ -20,6 +20,7 @@ for it by name raises ``DriverUnavailable`` with the reason.
 from __future__ import annotations
 
 import inspect
+import logging
 from importlib.metadata import EntryPoint, entry_points
 from typing import Any, NamedTuple
 
@@ -39,6 +40,9 @@ __all__ = [
     "load_driver",
     "settings_problems",
 ]
+
+log = logging.getLogger(__name__)
+_WARNED: set[tuple[str, str]] = set()
 
 #: kind -> entry point group
 DRIVER_GROUPS = {"camera": "maskrun.cameras", "modulator": "maskrun.modulators", "safety": "maskrun.safety_boxes"}
@@ -110,6 +114,9 @@ def _scan(kind: str) -> tuple[dict[str, type[Device]], dict[str, tuple[str, str]
             good[name] = _load(kind, ep)
         except ValueError as exc:
             bad[name] = (ep.value, str(exc))
+            if (kind, name) not in _WARNED:  # say why once per process
+                _WARNED.add((kind, name))
+                log.warning("%s driver %r (%s) skipped: %s", kind, name, ep.value, exc)
     return good, bad
 
 

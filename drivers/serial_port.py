@@ -208,7 +208,7 @@ class LinePort:
         return text
 
     def query(self, line: str, expect_regex: str | re.Pattern, timeout_s: float) -> re.Match:
-        """Send ``line``, read one reply and return its match against ``expect_regex``.
+        """Send ``line``, read one reply and return its full match against ``expect_regex``.
 
         Raises DeviceTimeout (no reply in time), DeviceDisconnected (port lost),
         DeviceFault (device error reply, or a reply not of the expected form).
@@ -217,7 +217,7 @@ class LinePort:
         self._discard_input()
         self.send(line)
         reply = self.read_line(timeout_s, command=line)
-        match = pattern.fullmatch(reply) or pattern.match(reply)
+        match = pattern.fullmatch(reply)
         if match is not None:
             return match
         if self.error_regex is not None:
@@ -286,13 +286,13 @@ class SerialLineSettings(DriverSettings):
     reconnect_timeout_s: how long ``reconnect()`` keeps retrying to reopen the port.
     """
 
-    port: str
-    baud: int = Field(default=115200, gt=0)
-    terminator: str = Field(default="\n", min_length=1)
-    encoding: str = "ascii"
-    timeout_s: float = Field(default=1.0, gt=0)
-    error_reply: str = r"^ERR (?P<reason>.*)$"
-    reconnect_timeout_s: float = Field(default=2.0, ge=0)
+    port: str = Field(description="device path (e.g. /dev/ttyUSB0) or 'sim:<name>' for a simulated controller")
+    baud: int = Field(default=115200, gt=0, description="line speed, bits per second")
+    terminator: str = Field(default="\n", min_length=1, description="line ending of commands and replies")
+    encoding: str = Field(default="ascii", description="text encoding of the protocol")
+    timeout_s: float = Field(default=1.0, gt=0, description="reply timeout, seconds (per command override: timeout_s)")
+    error_reply: str = Field(default=r"^ERR (?P<reason>.*)$", description="regex of error replies; group 'reason' is quoted")
+    reconnect_timeout_s: float = Field(default=2.0, ge=0, description="how long reconnect() retries to reopen the port, s")
 
     @field_validator("error_reply")
     @classmethod

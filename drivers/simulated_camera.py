@@ -73,27 +73,27 @@ class SimulatedCamera(Camera):
 
         sensor_shape: tuple[int, int] | None = Field(
             default=None, description="sensor (rows, cols); default: the simulated bench's sensor, or 256 x 256 alone")
-        quantum_efficiency: float = _DEFAULT_MODEL.quantum_efficiency
-        gain_dn_per_e: float = _DEFAULT_MODEL.gain_dn_per_e
-        read_noise_e: float = _DEFAULT_MODEL.read_noise_e
-        dark_current_e_per_s: float = _DEFAULT_MODEL.dark_current_e_per_s
-        offset_dn: float = _DEFAULT_MODEL.offset_dn
-        bit_depth: int = _DEFAULT_MODEL.bit_depth
-        full_well_e: float = _DEFAULT_MODEL.full_well_e
-        hot_pixel_fraction: float = _DEFAULT_MODEL.hot_pixel_fraction
-        hot_pixel_dark_current_e_per_s: float = _DEFAULT_MODEL.hot_pixel_dark_current_e_per_s
+        quantum_efficiency: float = Field(default=_DEFAULT_MODEL.quantum_efficiency, description="fraction of photons converted to electrons")
+        gain_dn_per_e: float = Field(default=_DEFAULT_MODEL.gain_dn_per_e, description="system gain K at gain 1, DN per electron")
+        read_noise_e: float = Field(default=_DEFAULT_MODEL.read_noise_e, description="read noise, electrons rms")
+        dark_current_e_per_s: float = Field(default=_DEFAULT_MODEL.dark_current_e_per_s, description="mean dark electrons per pixel per second")
+        offset_dn: float = Field(default=_DEFAULT_MODEL.offset_dn, description="black level, DN")
+        bit_depth: int = Field(default=_DEFAULT_MODEL.bit_depth, description="ADC bits (frames are uint8 up to 8, else uint16)")
+        full_well_e: float = Field(default=_DEFAULT_MODEL.full_well_e, description="electrons a pixel holds")
+        hot_pixel_fraction: float = Field(default=_DEFAULT_MODEL.hot_pixel_fraction, description="fraction of pixels with a high dark current")
+        hot_pixel_dark_current_e_per_s: float = Field(default=_DEFAULT_MODEL.hot_pixel_dark_current_e_per_s, description="dark current of hot pixels, electrons per second")
         exposure_s: float = Field(default=0.01, gt=0, description="exposure at start, seconds")
-        min_exposure_s: float = Field(default=1e-5, gt=0)
-        max_exposure_s: float = Field(default=10.0, gt=0)
+        min_exposure_s: float = Field(default=1e-5, gt=0, description="shortest exposure the camera accepts, s")
+        max_exposure_s: float = Field(default=10.0, gt=0, description="longest exposure the camera accepts, s")
         gain: float = Field(default=1.0, description="analog gain factor at start (multiplies gain_dn_per_e)")
-        max_gain: float = Field(default=16.0, ge=1.0)
-        readout_latency_s: float = Field(default=0.0, ge=0)
+        max_gain: float = Field(default=16.0, ge=1.0, description="largest analog gain factor")
+        readout_latency_s: float = Field(default=0.0, ge=0, description="time from the end of the exposure to the frame, s")
         real_time: bool = Field(default=True, description="wait exposure + readout before a frame is ready")
-        seed: int = 0
+        seed: int = Field(default=0, description="random seed of the noise and the hot pixel positions")
         standalone_photon_rate_per_s: float = Field(
             default=1000.0, ge=0, description="photons per pixel per second when there is no simulated bench")
-        sensor_temperature_c: float = 20.0
-        faults: list[CameraFault] = Field(default_factory=list)
+        sensor_temperature_c: float = Field(default=20.0, description="sensor temperature reported in the frame metadata, deg C")
+        faults: list[CameraFault] = Field(default_factory=list, description="injected faults: {kind, at_frame, count}")
 
         @field_validator("sensor_shape")
         @classmethod

@@ -68,13 +68,13 @@ from .incremental import EngineUpdate, IncrementalEngine
 from .masks import (binary_amplitude_masks, load_masks, mask_weight, octanary_masks, quantized_phase_masks,
                     random_phase_masks)
 from .metrics import align_global_phase, amplitude_residual, relative_error
-from .propagation import AliasingWarning, angular_spectrum, angular_spectrum_max_distance_m, forward
+from .propagation import AliasingWarning, aliasing_margin_m, angular_spectrum, angular_spectrum_max_distance_m, forward
 from .solvers import METHODS, SolveResult, solve
 from .validation import NotUniquelySolvableWarning, ReconstructionInputError, UnilluminatedPixelsWarning
 
 __all__ = [
     "octanary_masks", "random_phase_masks", "quantized_phase_masks", "binary_amplitude_masks", "load_masks",
-    "mask_weight", "forward", "angular_spectrum", "angular_spectrum_max_distance_m", "AliasingWarning",
+    "mask_weight", "forward", "angular_spectrum", "aliasing_margin_m", "angular_spectrum_max_distance_m", "AliasingWarning",
     "solve", "SolveResult", "METHODS", "relative_error", "align_global_phase", "amplitude_residual",
     "IncrementalEngine", "EngineUpdate", "shot_noise_relative_error", "poisson_crb", "relative_error_bound",
     "CRBResult", "ReconstructionInputError", "NotUniquelySolvableWarning", "UnilluminatedPixelsWarning",

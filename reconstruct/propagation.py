@@ -8,11 +8,13 @@ Near field: angular-spectrum propagation over a distance ``distance_m`` with
 wavelength ``wavelength_m`` and pixel pitch ``pixel_pitch_m`` (Goodman,
 Introduction to Fourier Optics, 3rd ed. 2005, ch. 3.10). The transfer function
 is H(fx, fy) = exp(i 2 pi z sqrt(1/lambda^2 - fx^2 - fy^2)), evanescent
-components (fx^2 + fy^2 > 1/lambda^2) are dropped. The discrete kernel is
-free of aliasing when its chirp is sampled finely enough:
-z <= N * dx^2 / lambda (for a square grid of N pixels of pitch dx), which is
-equivalent to requiring that the beam's spread stays within the grid;
-``angular_spectrum`` warns (``AliasingWarning``) when this is exceeded.
+components (fx^2 + fy^2 > 1/lambda^2) are dropped. The discrete
+propagation is circular: light that leaves the grid window re-enters on the
+other side. ``angular_spectrum`` warns (``AliasingWarning``) when the
+field's occupied width plus its spread 2 z tan(theta) (theta from the
+field's own bandwidth) exceeds the window. A field using the whole band is
+safe only up to z = N dx^2 / lambda (``angular_spectrum_max_distance_m``,
+the usual transfer-function sampling criterion).
 """
 from __future__ import annotations
 
@@ -28,6 +30,7 @@ __all__ = [
     "angular_spectrum_transfer",
     "angular_spectrum_max_distance_m",
     "AliasingWarning",
+    "aliasing_margin_m",
 ]
 
 
@@ -86,29 +89,78 @@ def angular_spectrum_transfer(shape, wavelength_m: float, pixel_pitch_m: float, 
     return h.astype(dtype)
 
 
+def _occupied_width_m(power_1d: np.ndarray, step: float, fraction: float) -> float:
+    """Width holding ``fraction`` of the energy of a 1-D power profile (samples times step)."""
+    p = np.sort(power_1d)[::-1]
+    c = np.cumsum(p)
+    return float(np.searchsorted(c, fraction * c[-1]) + 1) * step
+
+
+def aliasing_margin_m(field, wavelength_m: float, pixel_pitch_m: float, distance_m: float,
+                      energy_fraction: float = 1 - 1e-4) -> float:
+    """Grid width left over after propagation (m, per worst axis); negative means wrap-around.
+
+    Content-aware check: the field occupies a width D (holding
+    ``energy_fraction`` of its energy) and its spectrum reaches a frequency
+    f (same fraction); over a distance z light at that frequency moves
+    sideways by z*tan(theta), sin(theta) = lambda*f, on both sides. The
+    result stays on the grid of width N*dx while D + 2 z tan(theta) <= N*dx.
+    """
+    u = np.asarray(field)
+    I = np.abs(u.reshape(-1, *u.shape[-2:])) ** 2
+    I = I.sum(axis=0)
+    S = np.abs(np.fft.fft2(u.reshape(-1, *u.shape[-2:]), norm="ortho")) ** 2
+    S = S.sum(axis=0)
+    margins = []
+    for axis in (0, 1):
+        n = u.shape[-2 + axis]
+        width = _occupied_width_m(I.sum(axis=1 - axis), pixel_pitch_m, energy_fraction)
+        spec = S.sum(axis=1 - axis)
+        f = np.abs(np.fft.fftfreq(n, d=pixel_pitch_m))
+        order = np.argsort(-spec)
+        c = np.cumsum(spec[order])
+        k = int(np.searchsorted(c, energy_fraction * c[-1]))
+        fmax = float(f[order[: k + 1]].max())
+        s = min(wavelength_m * fmax, 0.999999)
+        spread = 2 * abs(distance_m) * s / np.sqrt(1 - s * s)
+        margins.append(n * pixel_pitch_m - width - spread)
+    return float(min(margins))
+
+
 def angular_spectrum(field, wavelength_m: float, pixel_pitch_m: float, distance_m: float,
                      *, check_sampling: bool = True) -> np.ndarray:
-    """Propagate a complex field (…, H, W) by ``distance_m`` (negative: back-propagate).
+    """Propagate a complex field (..., H, W) by ``distance_m`` (negative: back-propagate).
 
     Energy in propagating components is conserved (unitary on that band).
-    Warns with ``AliasingWarning`` if |distance_m| exceeds
-    ``angular_spectrum_max_distance_m``: the field then wraps around the
-    grid edges; pad the field or use a larger pixel pitch.
+    With ``check_sampling`` (default) it warns with ``AliasingWarning`` when
+    the propagated light would not fit on the grid (``aliasing_margin_m`` < 0,
+    which uses the field's actual extent and bandwidth); the result then wraps
+    around the edges: zero-pad the field, or shorten the distance.
+    ``angular_spectrum_max_distance_m`` gives the content-independent
+    worst case (a field using the whole band).
     """
+    if not (np.isfinite(wavelength_m) and np.isfinite(pixel_pitch_m)) or wavelength_m <= 0 or pixel_pitch_m <= 0:
+        raise ReconstructionInputError(
+            f"wavelength_m ({wavelength_m}) and pixel_pitch_m ({pixel_pitch_m}) must be positive, in metres."
+        )
     u = np.asarray(field)
     if u.ndim < 2:
         raise ReconstructionInputError(f"field must be at least 2-D (H, W); got shape {u.shape}.")
     if not np.all(np.isfinite(u)):
         raise ReconstructionInputError("field contains NaN or infinite values.")
-    if pixel_pitch_m >= wavelength_m / 2 * 1e6:
-        raise ReconstructionInputError("pixel_pitch_m looks like it is not in metres (it is > 5e5 wavelengths).")
-    if check_sampling:
-        zmax = angular_spectrum_max_distance_m(u.shape, wavelength_m, pixel_pitch_m)
-        if abs(distance_m) > zmax:
+    if pixel_pitch_m > 1e5 * wavelength_m:
+        raise ReconstructionInputError(
+            f"pixel_pitch_m = {pixel_pitch_m} is over 1e5 wavelengths: give both lengths in metres."
+        )
+    if check_sampling and distance_m != 0 and np.any(u != 0):
+        margin = aliasing_margin_m(u, wavelength_m, pixel_pitch_m, distance_m)
+        if margin < 0:
             warnings.warn(
-                f"angular-spectrum propagation over {abs(distance_m):.4g} m aliases on this grid "
-                f"(limit N*dx^2/lambda = {zmax:.4g} m): the field wraps around the edges. "
-                "Zero-pad the field, enlarge the pixel pitch, or shorten the distance.",
+                f"angular-spectrum propagation over {abs(distance_m):.4g} m aliases on this grid: the light "
+                f"spreads {-margin:.3g} m beyond the {u.shape[-1]}x{pixel_pitch_m:.3g} m window and wraps around "
+                f"the edges (band-edge limit N*dx^2/lambda = "
+                f"{angular_spectrum_max_distance_m(u.shape, wavelength_m, pixel_pitch_m):.4g} m). "
+                "Zero-pad the field or shorten the distance.",
                 AliasingWarning,
                 stacklevel=2,
             )

@@ -108,6 +108,65 @@ def _sumsq(d: np.ndarray) -> float:
     return float(np.einsum("i,i->", d, d))
 
 
+_POOL = None
+_THREAD_CHOICE: dict[tuple, int] = {}
+_THREAD_MEASURE_MIN_ELEMENTS = 8 * 96 * 96
+
+
+def _thread_pool(n: int):
+    global _POOL
+    if _POOL is None or _POOL._max_workers < n:
+        from concurrent.futures import ThreadPoolExecutor
+
+        _POOL = ThreadPoolExecutor(max_workers=n, thread_name_prefix="maskrun-recon")
+    return _POOL
+
+
+def _single_thread_backend(shape, dtype) -> str:
+    """Fastest single-threaded FFT backend for a chunk (measured via FFTPlan)."""
+    from . import fft as _fft
+
+    key = (tuple(shape), np.dtype(dtype).str, "single")
+    if key not in _fft._CHOICE_CACHE:
+        rng = np.random.default_rng(0)
+        buf = (rng.standard_normal(shape) + 1j * rng.standard_normal(shape)).astype(dtype)
+        times = {b: _fft._time_backend(b, buf, 3) for b in ("numpy", "scipy-1")}
+        _fft._CHOICE_CACHE[key] = min(times, key=times.get)
+    return _fft._CHOICE_CACHE[key]
+
+
+def _choose_threads(ws: "Workspace") -> int:
+    from . import fft as _fft
+
+    cores = _fft._cpu_workers()
+    K = ws.shape[0]
+    if cores < 2 or K < 2 or int(np.prod(ws.shape)) < _THREAD_MEASURE_MIN_ELEMENTS:
+        return 1
+    key = (tuple(ws.shape), ws.dtype.str, cores)
+    if key in _THREAD_CHOICE:
+        return _THREAD_CHOICE[key]
+    rng = np.random.default_rng(0)
+    H, W = ws.shape[1:]
+    x = (rng.standard_normal((H, W)) + 1j * rng.standard_normal((H, W))).astype(ws.dtype)
+    saved = ws.sqrty.copy(), ws.norm_sqrty
+    ws.sqrty[...] = 1.0
+    ws.norm_sqrty = float(np.sqrt(ws.sqrty.size))
+    times = {}
+    for n in (1, min(cores, K)):
+        ws._set_threads(n)
+        _er_step(ws, x)
+        best = np.inf
+        for _ in range(3):
+            t0 = time.perf_counter()
+            _er_step(ws, x)
+            best = min(best, time.perf_counter() - t0)
+        times[n] = best
+    ws.sqrty[...], ws.norm_sqrty = saved
+    choice = min(times, key=times.get)
+    _THREAD_CHOICE[key] = choice
+    return choice
+
+
 class Workspace:
     """Masks, data and preallocated buffers for one problem size.
 
@@ -117,7 +176,7 @@ class Workspace:
     engine uses this to warm-start without reallocating).
     """
 
-    def __init__(self, masks: np.ndarray, dtype=np.complex64, fft_backend: str = "auto"):
+    def __init__(self, masks: np.ndarray, dtype=np.complex64, fft_backend: str = "auto", threads: int | str = "auto"):
         self.dtype = check_dtype(dtype)
         self.real_dtype = np.float32 if self.dtype == np.complex64 else np.float64
         m = np.asarray(masks)
@@ -138,6 +197,42 @@ class Workspace:
         self.y = np.zeros(self.shape, self.real_dtype)
         self.norm_sqrty = 1.0
         self.tiny = self.real_dtype(np.finfo(self.real_dtype).tiny * 1e3)
+        self._set_threads(threads, fft_backend)
+
+    # --- splitting the K masks over threads -----------------------------
+    def _set_threads(self, threads, fft_backend: str = "auto") -> None:
+        """Split the masks into chunks, one per thread (1 = no threading).
+
+        "auto" measures a few ER iterations serially (with the best batched
+        FFT, possibly itself multi-threaded) and split over all cores (each
+        chunk with a single-threaded FFT), and keeps the faster; the choice
+        is cached per (shape, dtype) like the FFT backend.
+        """
+        K = self.shape[0]
+        if threads == "auto":
+            threads = _choose_threads(self)
+        threads = max(1, min(int(threads), K))
+        self.threads = threads
+        bounds = np.linspace(0, K, threads + 1).round().astype(int)
+        self.chunks = [slice(int(a), int(b)) for a, b in zip(bounds[:-1], bounds[1:])]
+        if threads == 1:
+            self.chunk_plans = [self.plan]
+        else:
+            backend = fft_backend if fft_backend in ("numpy", "scipy-1") else None
+            self.chunk_plans = [
+                FFTPlan((c.stop - c.start,) + tuple(self.shape[1:]), self.dtype,
+                        backend or _single_thread_backend((c.stop - c.start,) + tuple(self.shape[1:]), self.dtype))
+                for c in self.chunks
+            ]
+
+    def map_chunks(self, fn):
+        """Run fn(chunk_slice, plan) for every chunk (in parallel if threaded); return the results."""
+        if self.threads == 1:
+            return [fn(self.chunks[0], self.chunk_plans[0])]
+        pool = _thread_pool(self.threads)
+        futures = [pool.submit(fn, c, p) for c, p in zip(self.chunks[1:], self.chunk_plans[1:])]
+        first = fn(self.chunks[0], self.chunk_plans[0])
+        return [first] + [f.result() for f in futures]
 
     def set_intensities(self, y: np.ndarray) -> None:
         self.y[...] = y
@@ -258,13 +353,36 @@ class _Stopper:
         return False
 
 
+def _er_step(ws, x):
+    """One error-reduction step; returns (new x, relative residual of the old x)."""
+    masks, mcw, Z, R, D, sqrty, tiny = ws.masks, ws.masks_conj_w, ws.Z, ws.R, ws.D, ws.sqrty, ws.tiny
+
+    def chunk(c, plan):
+        Zc, Rc, Dc, sy = Z[c], R[c], D[c], sqrty[c]
+        np.multiply(masks[c], x, out=Zc)
+        plan.forward(Zc)
+        np.abs(Zc, out=Rc)
+        np.subtract(sy, Rc, out=Dc)
+        ss = _sumsq(Dc.reshape(-1))
+        Rc += tiny  # avoids 0/0; cheaper than np.maximum
+        np.divide(sy, Rc, out=Rc)
+        Zc *= Rc
+        plan.inverse(Zc)
+        Zc *= mcw[c]
+        return Zc.sum(axis=0), ss
+
+    parts = ws.map_chunks(chunk)
+    xn = parts[0][0]
+    for p in parts[1:]:
+        xn += p[0]
+    return xn, float(np.sqrt(sum(p[1] for p in parts))) / ws.norm_sqrty
+
+
 def _run_er(ws, x, n, cons, residuals, stopper, deadline, truth, errors):
-    Z = ws.Z
     it = 0
     for it in range(1, n + 1):
-        ws.apply(x, Z)
-        residuals.append(ws.magnitude_project(Z, Z, True))
-        x = ws.pseudo_inverse(Z)
+        x, res = _er_step(ws, x)
+        residuals.append(res)
         if cons.active:
             cons(x)
         if truth is not None:
@@ -295,31 +413,45 @@ def _run_raar(ws, x, n, cons, residuals, stopper, deadline, truth, errors, beta=
     """
     st = state or _RAARState(ws)
     Zl, T = st.Zl, st.T
-    R, D = ws.R, ws.D
+    R, D, sqrty, tiny, masks, mcw = ws.R, ws.D, ws.sqrty, ws.tiny, ws.masks, ws.masks_conj_w
     ws.apply(x, Zl)
+    a, b = 1.0 - 2.0 * beta, beta
+
+    def phase1(c, plan):
+        Zc, Rc, Dc, Tc, sy = Zl[c], R[c], D[c], T[c], sqrty[c]
+        np.abs(Zc, out=Rc)
+        np.subtract(sy, Rc, out=Dc)
+        ss = _sumsq(Dc.reshape(-1))
+        Rc += tiny
+        np.divide(sy, Rc, out=Rc)
+        np.subtract(Rc, 0.5, out=Dc)
+        np.multiply(Zc, Dc, out=Tc)  # (2P - Z) / 2
+        plan.inverse(Tc)
+        Tc *= mcw[c]
+        return Tc.sum(axis=0), ss
+
+    def phase2(c, plan):
+        Zc, Rc, Tc = Zl[c], R[c], T[c]
+        Rc *= a
+        Rc += b
+        Zc *= Rc
+        np.multiply(masks[c], xs, out=Tc)
+        plan.forward(Tc)
+        Zc += Tc
+        return None
+
     it = 0
     for it in range(1, n + 1):
-        # r = sqrt(y)/|Z| into R (residual of the current lifted iterate)
-        np.abs(Zl, out=R)
-        np.subtract(ws.sqrty, R, out=D)
-        d = D.reshape(-1)
-        residuals.append(float(np.sqrt(_sumsq(d))) / ws.norm_sqrty)
-        R += ws.tiny
-        np.divide(ws.sqrty, R, out=R)
-        # T = Z (r - 1/2) = (2P - Z)/2
-        np.subtract(R, 0.5, out=D)
-        np.multiply(Zl, D, out=T)
-        xs = ws.pseudo_inverse(T)
+        parts = ws.map_chunks(phase1)
+        xs = parts[0][0]
+        for p in parts[1:]:
+            xs += p[0]
+        residuals.append(float(np.sqrt(sum(p[1] for p in parts))) / ws.norm_sqrty)
         xs *= 2.0
         if cons.active:
             cons(xs)
         xs *= beta
-        # Z <- Z (beta + (1 - 2 beta) r) + A(beta x_s)
-        np.multiply(R, 1.0 - 2.0 * beta, out=R)
-        R += beta
-        Zl *= R
-        ws.apply(xs, T)
-        Zl += T
+        ws.map_chunks(phase2)
         if truth is not None:
             xe = _raar_estimate(ws, st)
             if cons.active:
@@ -345,24 +477,49 @@ def _run_hybrid(ws, x, n, cons, residuals, stopper, deadline, truth, errors, bet
 
 def _run_wf(ws, x, n, cons, residuals, stopper, deadline, truth, errors, t0=0, x0_norm2=None, mu_max=0.2,
             tau0=330.0):
+    """Wirtinger flow on f = sum (|Ax|^2 - y)^2, step mu_t n / (mean(w) ||x0||^2).
+
+    Safeguard (ours, not in the paper): whenever the loss rises, the step
+    scale is halved for the rest of the run, so the published schedule
+    cannot diverge on hard objects.
+    """
     Z, R = ws.Z, ws.R
     H, W = ws.shape[1:]
     npix = H * W
     if x0_norm2 is None:
         x0_norm2 = _norm(x) ** 2
+    damping = 1.0
+    f_prev = np.inf
+    masks, mcw, y, sqrty = ws.masks, ws.masks_conj_w, ws.y, ws.sqrty
+
+    def chunk(c, plan):
+        Zc, Rc, Dc = Z[c], R[c], ws.D[c]
+        np.multiply(masks[c], x, out=Zc)
+        plan.forward(Zc)
+        np.abs(Zc, out=Rc)
+        np.subtract(sqrty[c], Rc, out=Dc)
+        ss = _sumsq(Dc.reshape(-1))
+        np.square(Rc, out=Rc)
+        Rc -= y[c]
+        f = _sumsq(Rc.reshape(-1))
+        Zc *= Rc
+        plan.inverse(Zc)
+        Zc *= mcw[c]
+        return Zc.sum(axis=0), ss, f
+
     it = 0
     for it in range(1, n + 1):
-        ws.apply(x, Z)
-        np.abs(Z, out=R)
-        np.subtract(ws.sqrty, R, out=ws.D)
-        d = ws.D.reshape(-1)
-        residuals.append(float(np.sqrt(_sumsq(d))) / ws.norm_sqrty)
-        np.square(R, out=R)
-        R -= ws.y
-        Z *= R
-        g = ws.pseudo_inverse(Z)
+        parts = ws.map_chunks(chunk)
+        g = parts[0][0]
+        for p in parts[1:]:
+            g += p[0]
+        residuals.append(float(np.sqrt(sum(p[1] for p in parts))) / ws.norm_sqrty)
+        f = sum(p[2] for p in parts)
+        if f > f_prev:
+            damping *= 0.5
+        f_prev = f
         g *= ws.weight_r  # A^* z = w * (A^*A)^{-1} A^* z
-        mu = min(1.0 - np.exp(-(t0 + it) / tau0), mu_max)
+        mu = min(1.0 - np.exp(-(t0 + it) / tau0), mu_max) * damping
         x = x - (mu * npix / (ws.mean_weight * x0_norm2)) * g
         if cons.active:
             cons(x)

@@ -46,6 +46,7 @@ from __future__ import annotations
 
 import errno
 import fcntl
+import logging
 import os
 import select
 import shutil
@@ -58,6 +59,8 @@ from typing import Iterable, Literal
 from pydantic import BaseModel, ConfigDict, Field
 
 __all__ = ["FirmwareFault", "FirmwareHandle", "start_firmware", "FIRMWARE_KINDS"]
+
+log = logging.getLogger(__name__)
 
 FIRMWARE_KINDS = ("modulator", "safety")
 
@@ -350,30 +353,38 @@ class FirmwareHandle:
     # -------------------------------------------------------------- loop
     def _run(self) -> None:
         while not self._stopping:
-            now = time.monotonic()
-            deadlines = [d for d in (self._protocol.next_deadline(), self._replug_at) if d is not None]
-            timeout = max(0.0, min(deadlines) - now) if deadlines else 0.5
-            fds = [self._wake_r] + ([self._master] if self._master is not None else [])
             try:
-                readable, _, _ = select.select(fds, [], [], timeout)
-            except (OSError, ValueError):
-                readable = []
-            if self._stopping:
-                break
-            if self._wake_r in readable:
-                try:
-                    os.read(self._wake_r, 4096)
-                except OSError:
-                    pass
-            self._serve_requests()
-            now = time.monotonic()
-            if self._replug_at is not None and now >= self._replug_at:
-                self._replug_at = None
-                if self._master is None:
-                    self._plug()
-            self._protocol.tick(now)
-            if self._master is not None and self._master in readable:
-                self._read_commands()
+                self._step()
+            except Exception:  # noqa: BLE001 - keep the device alive; the log says what happened
+                log.exception("firmware %s: unexpected error in its loop", self.name)
+                time.sleep(0.05)
+
+    def _step(self) -> None:
+        """One turn of the device loop: wait for input or a timer, then serve it."""
+        now = time.monotonic()
+        deadlines = [d for d in (self._protocol.next_deadline(), self._replug_at) if d is not None]
+        timeout = max(0.0, min(deadlines) - now) if deadlines else 0.5
+        fds = [self._wake_r] + ([self._master] if self._master is not None else [])
+        try:
+            readable, _, _ = select.select(fds, [], [], timeout)
+        except (OSError, ValueError):
+            readable = []
+        if self._stopping:
+            return
+        if self._wake_r in readable:
+            try:
+                os.read(self._wake_r, 4096)
+            except OSError:
+                pass
+        self._serve_requests()
+        now = time.monotonic()
+        if self._replug_at is not None and now >= self._replug_at:
+            self._replug_at = None
+            if self._master is None:
+                self._plug()
+        self._protocol.tick(now)
+        if self._master is not None and self._master in readable:
+            self._read_commands()
 
     def _serve_requests(self) -> None:
         with self._lock:
@@ -408,7 +419,11 @@ class FirmwareHandle:
                 self._replug_at = time.monotonic() + fault.duration_s
                 return
             line = raw.decode("ascii", errors="replace").strip()
-            reply = self._protocol.handle(line).encode("ascii", errors="replace")
+            try:
+                reply = self._protocol.handle(line).encode("ascii", errors="replace")
+            except Exception as exc:  # noqa: BLE001 - a firmware bug must not kill the device thread
+                log.exception("firmware %s failed on %r", self.name, line)
+                reply = f"ERR internal fault: {type(exc).__name__}".encode("ascii", errors="replace")
             if fault is not None and fault.kind == "no_reply":
                 continue
             if fault is not None and fault.kind == "garbled":

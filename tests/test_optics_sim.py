@@ -7,6 +7,8 @@ import time
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 import scipy.fft
 
 from maskrun.simulators.optics import SimulatedOptics
@@ -188,3 +190,27 @@ def test_phase_target_depths_and_patch():
 def test_phase_target_rejects_tiny_grid():
     with pytest.raises(ValueError, match="at least 16"):
         phase_target((8, 32))
+
+
+@settings(max_examples=30, deadline=None)
+@given(
+    h=st.integers(1, 12), w=st.integers(1, 12), extra_r=st.integers(0, 7), extra_c=st.integers(0, 7),
+    k=st.integers(1, 3), rate=st.floats(1e-3, 1e12), exposure_s=st.floats(1e-6, 10.0), seed=st.integers(0, 99),
+)
+def test_photon_budget_for_any_geometry(h, w, extra_r, extra_c, k, rate, exposure_s, seed):
+    rng = np.random.default_rng(seed)
+    sample = (0.1 + rng.random((h, w))) * np.exp(2j * np.pi * rng.random((h, w)))
+    opt = SimulatedOptics(sample, _masks(k, (h, w), seed), rate, (h + extra_r, w + extra_c))
+    opt.shutter_open = True
+    r0, c0, rows, cols = opt.grid_roi
+    assert (rows, cols) == (h, w) and r0 + rows <= h + extra_r and c0 + cols <= w + extra_c
+    # centred: the margins on both sides differ by at most one pixel
+    assert abs((h + extra_r - rows - r0) - r0) <= 1 and abs((w + extra_c - cols - c0) - c0) <= 1
+    totals = []
+    for m in range(k):
+        opt.shown_mask = m
+        img = opt.expected_photons(exposure_s)
+        assert img.min() >= 0
+        totals.append(img[r0 : r0 + rows, c0 : c0 + cols].sum())
+        assert img.sum() == pytest.approx(totals[-1], rel=1e-12)
+    assert np.mean(totals) == pytest.approx(rate * exposure_s, rel=1e-9)

@@ -96,8 +96,9 @@ def test_gain_is_recovered_over_a_range_of_cameras(gain, read, full_well):
     rate = model.saturation_electrons / model.quantum_efficiency
     # Steps of 1.5 % of saturation. The variance of a clipped signal peaks about 2-3 shot-noise sigma
     # below the well (derived: var(min(X, c)) for X ~ N(mu, mu) peaks near c - 3 sqrt(c)), i.e. within
-    # 3 % for wells above 10000 e-; smaller wells would need a looser tolerance.
-    r = analyse_photon_transfer(simulate_series(model, np.linspace(0.015, 1.35, 90), rate, shape=(64, 64)))
+    # 3 % for wells above 10000 e-; smaller wells would need a looser tolerance. The variance estimate
+    # itself scatters by sqrt(2/N) (1.1 % for 128 x 128 pixels), which may move the peak by a step.
+    r = analyse_photon_transfer(simulate_series(model, np.linspace(0.015, 1.35, 90), rate, shape=(128, 128)))
     assert r.gain_dn_per_e == pytest.approx(gain, rel=0.03)
     assert r.saturation_capacity_e == pytest.approx(model.saturation_electrons, rel=0.05)
 

@@ -128,6 +128,7 @@ def test_serial_modulator_on_simulated_firmware(optics, firmware):
     fw = firmware("modulator", optics, settle_s=0.05)
     ctx = BenchContext(optics=optics, ports={"modulator": fw.port})
     mod = build_driver("modulator", "serial-line", {"port": "sim:modulator", "settle_s": 0.05}, ctx)
+    assert isinstance(mod, SerialLineModulator)
     with mod:
         assert mod.identity == "sim-modulator 1.0"
         mod.load(np.ones((3, 8, 8), complex))

@@ -6,6 +6,8 @@ import time
 
 import numpy as np
 import pytest
+from hypothesis import given, settings as hsettings
+from hypothesis import strategies as st
 
 from maskrun.drivers import BenchContext, DeviceDisconnected, DeviceFault, DeviceMisconfigured, DeviceTimeout
 from maskrun.drivers.simulated_camera import SimulatedCamera
@@ -232,3 +234,31 @@ def test_disconnect_persists_until_reopened():
         assert cam.grab(1.0).frame_id == 2
     with pytest.raises(DeviceDisconnected, match="not open"):
         cam.grab(1.0)
+
+
+def test_hot_pixels_stay_put():
+    settings = dict(hot_pixel_fraction=0.01, hot_pixel_dark_current_e_per_s=2000.0, standalone_photon_rate_per_s=0.0,
+                    exposure_s=1.0, gain_dn_per_e=0.25, offset_dn=100.0, seed=21)
+    a, b = _camera(**settings), _camera(**settings)
+    with a, b:
+        hot = [cam.grab(2.0).pixels > 100 + 0.25 * 1000 for cam in (a, a, b)]
+    assert hot[0].sum() == round(0.01 * 64 * 64)
+    np.testing.assert_array_equal(hot[0], hot[1])
+    np.testing.assert_array_equal(hot[0], hot[2])
+
+
+@hsettings(max_examples=25, deadline=None)
+@given(r0=st.integers(0, 30), c0=st.integers(0, 30), rows=st.integers(1, 34), cols=st.integers(1, 34),
+       binning=st.integers(1, 4))
+def test_frame_shape_follows_roi_and_binning(r0, c0, rows, cols, binning):
+    cam = _camera(sensor_shape=(64, 64))
+    with cam:
+        cam.roi = (r0, c0, rows, cols)
+        if binning > min(rows, cols):
+            with pytest.raises(DeviceMisconfigured):
+                cam.binning = binning
+            return
+        cam.binning = binning
+        frame = cam.grab(1.0)
+    assert frame.pixels.shape == cam.frame_shape == (rows // binning, cols // binning)
+    assert frame.pixels.max() <= cam.max_dn

@@ -11,7 +11,7 @@ import time
 import numpy as np
 from pydantic import Field
 
-from maskrun.drivers import Camera, DeviceMisconfigured, DeviceTimeout, DriverSettings, Frame
+from maskrun.drivers import Camera, DeviceDisconnected, DeviceMisconfigured, DeviceTimeout, DriverSettings, Frame
 
 
 class PatternCamera(Camera):
@@ -21,6 +21,7 @@ class PatternCamera(Camera):
         sensor_shape: tuple[int, int] = Field((64, 64), description="rows, cols")
         bit_depth: int = Field(10, ge=8, le=16)
         frame_time_s: float = Field(0.001, ge=0, description="readout time added to the exposure")
+        device_index: int = Field(0, ge=0, description="which camera to open; this example has one, at index 0")
 
     def __init__(self, settings, context=None):
         super().__init__(settings, context)
@@ -30,6 +31,10 @@ class PatternCamera(Camera):
         self._frame_id = 0
 
     def open(self) -> None:
+        # A real driver connects to the device here and raises a DeviceError if it cannot.
+        if self.settings.device_index != 0:
+            raise DeviceDisconnected(f"no camera at index {self.settings.device_index}", device="camera",
+                                     hint="check the cable, or set device_index = 0")
         self._open = True
 
     def close(self) -> None:
@@ -61,13 +66,13 @@ class PatternCamera(Camera):
 
     @exposure_s.setter
     def exposure_s(self, value):
-        if not 0 < value <= 10:
+        if not 0 < value <= 10:  # also refuses NaN
             raise DeviceMisconfigured(f"exposure {value} s outside 0..10 s", device="camera")
         self._exposure_s = float(value)
 
     def grab(self, timeout_s: float) -> Frame:
         if not self._open:
-            raise DeviceMisconfigured("grab before open()", device="camera", hint="open the camera first")
+            raise DeviceDisconnected("the camera is not open", device="camera", hint="open the camera first")
         wait = self._exposure_s + self.settings.frame_time_s
         if wait > timeout_s:
             time.sleep(timeout_s)

@@ -1,0 +1,169 @@
+"""Verbs `calibrate CONFIG` (EMVA 1288 photon transfer -> camera profile) and
+`plan CONFIG` (photon budget for a wanted precision)."""
+
+from __future__ import annotations
+
+import time
+from pathlib import Path
+
+from rich.console import Console
+from rich.table import Table
+
+from .safety import UNATTENDED_OPTION
+
+
+def register(sub) -> None:
+    p = sub.add_parser(
+        "calibrate",
+        help="measure the camera's gain, dark noise, saturation and linearity (EMVA 1288 photon transfer) "
+        "and write a camera profile",
+    )
+    p.add_argument("config", help="bench config (TOML)")
+    p.add_argument("--output", help="camera profile to write (default: <camera driver>-profile-<date>.json beside the config)")
+    p.add_argument("--steps", type=int, default=50, help="exposure steps from dark to beyond saturation (default 50)")
+    p.add_argument("--longest-exposure-s", type=float, help="longest exposure; default: probed with the shutter open")
+    p.add_argument("--plot", help="PNG of the photon transfer and linearity plots (default: beside the profile)")
+    p.add_argument(UNATTENDED_OPTION, dest="ack", action="store_true", help="acknowledge the laser-safety notice")
+    p.add_argument("--uniform-light-ready", action="store_true",
+                   help="real benches: confirm the camera sees uniform light (sample and mask removed, diffuser in)")
+    p.set_defaults(func=cmd_calibrate)
+
+    p = sub.add_parser("plan", help="photons, exposure and passes needed for a wanted precision (Cramér-Rao bound "
+                       "or shot-noise rule), with saturation and dose warnings")
+    p.add_argument("config", help="bench config (TOML)")
+    g = p.add_mutually_exclusive_group(required=True)
+    g.add_argument("--phase-precision", type=float, help="wanted phase standard deviation, radians")
+    g.add_argument("--relative-error", type=float, help="wanted relative error of the field")
+    p.add_argument("--photon-rate-per-s", type=float,
+                   help="incident photons per second at the camera (default: the simulated bench's rate, or the laser power)")
+    p.add_argument("--method", choices=("auto", "crb", "shot_noise"), default="auto")
+    p.set_defaults(func=cmd_plan)
+
+
+def _table(title: str, rows) -> Table:
+    t = Table(title=title)
+    t.add_column("quantity", style="bold")
+    t.add_column("value", justify="right")
+    t.add_column("unit")
+    for r in rows:
+        t.add_row(*r)
+    return t
+
+
+def _uniform_light(bench, console: Console, ready: bool) -> float | None:
+    """EMVA 1288 asks for a uniform irradiance on the sensor: no sample, no mask.
+    Returns the known irradiance in photons per pixel per second (simulated benches), else None."""
+    from .cli import CommandError
+
+    if bench.simulated:
+        import numpy as np
+
+        point = np.zeros(bench.grid_shape, dtype=complex)
+        point[0, 0] = 1.0  # a point source: its far field is uniform
+        bench.optics.set_sample(point)
+        bench.optics.shown_mask = None
+        console.print("Simulated bench: sample replaced by a point source and the mask by a blank, "
+                      "so the camera sees uniform light.")
+        h, w = bench.grid_shape
+        # blank mask, point source: every grid pixel gets |truth[0, 0]|^2 / (h w) photons per second
+        return float(abs(bench.optics.truth_field()[0, 0]) ** 2) / (h * w)
+    if not ready:
+        raise CommandError(
+            "photon transfer needs uniform light on the camera: remove the sample and the mask (or put a diffuser "
+            "in the beam), then run again with --uniform-light-ready"
+        )
+    return None
+
+
+def cmd_calibrate(args) -> int:
+    from .bench import build_bench
+    from .calibration import default_exposure_series, measure_photon_transfer
+    from .camera_profile import CameraProfile
+    from .cli import CommandError
+    from .config import load_config
+    from .calibration import CalibrationAborted
+    from .photon_transfer import PhotonTransferError, plot_photon_transfer
+    from .safety import acknowledge
+
+    console = Console(highlight=False)
+    cfg = load_config(args.config)
+    bench = build_bench(cfg)
+    try:
+        acknowledge(cfg.laser, console, unattended=args.ack, operator=cfg.run.operator)
+        bench.open()
+        known_irradiance = _uniform_light(bench, console, args.uniform_light_ready)
+        if not bench.safety.interlock_closed():
+            raise CommandError("interlock reads OPEN: close the enclosure before calibrating (the shutter must open)")
+        try:
+            exposures = default_exposure_series(bench.camera, bench.safety, steps=args.steps,
+                                                longest_s=args.longest_exposure_s)
+        except ValueError as exc:
+            raise CommandError(str(exc)) from None
+        console.print(f"Photon transfer: {len(exposures)} exposures from {exposures[0]:.3g} s to {exposures[-1]:.3g} s, "
+                      "a dark pair and a bright pair at each.")
+        with console.status("measuring") as status:
+            try:
+                result = measure_photon_transfer(bench.camera, bench.safety, exposures,
+                                                 photons_per_pixel_per_s=known_irradiance,
+                                                 progress=lambda done, total, msg: status.update(f"{done}/{total} frames: {msg}"))
+            except (PhotonTransferError, CalibrationAborted) as exc:
+                raise CommandError(str(exc)) from None
+    finally:
+        bench.close()
+    stamp = time.strftime("%Y%m%d-%H%M%S")
+    out = Path(args.output) if args.output else cfg.config_dir / f"{cfg.camera.driver}-profile-{stamp}.json"
+    profile = CameraProfile.from_result(result, bench.camera, driver_name=cfg.camera.driver,
+                                        wavelength_m=cfg.laser.wavelength_m)
+    profile.save(out)
+    png = Path(args.plot) if args.plot else out.with_suffix(".png")
+    plot_photon_transfer(result, png)
+    console.print(_table("Photon transfer (EMVA 1288 Release 4.0 Linear)", result.summary_rows()))
+    console.print(f"Camera profile: [bold]{out}[/]   plots: [bold]{png}[/]")
+    console.print(f'Use it: in the bench config, \\[response] profile = "{out}"')
+    return 0
+
+
+def cmd_plan(args) -> int:
+    from .budget import PlanError, plan_photons
+    from .camera_profile import CameraProfile
+    from .cli import CommandError
+    from .config import load_config
+
+    console = Console(highlight=False)
+    cfg = load_config(args.config)
+    profile = None
+    if cfg.response.profile:
+        profile = CameraProfile.load(cfg.config_dir / cfg.response.profile)
+    rate = args.photon_rate_per_s
+    rate_note = "given on the command line"
+    if rate is None and cfg.simulation is not None:
+        rate, rate_note = cfg.simulation.photon_rate_per_s, "from \\[simulation] photon_rate_per_s"
+    kwargs = dict(photon_rate_per_s=rate) if rate else dict(laser_power_w=cfg.laser.power_w,
+                                                              wavelength_m=cfg.laser.wavelength_m)
+    if not rate:
+        rate_note = "from the laser power, assuming all of it reaches the camera (give --photon-rate-per-s)"
+    try:
+        plan = plan_photons(
+            tuple(cfg.grid.shape),
+            cfg.masks.count,
+            target_phase_precision_rad=args.phase_precision,
+            target_relative_error=args.relative_error,
+            method=args.method,
+            profile=profile,
+            quantum_efficiency=None if profile else cfg.response.quantum_efficiency,
+            wavelength_m=cfg.laser.wavelength_m,
+            illuminated_area_m2=cfg.checks.illuminated_area_m2,
+            max_energy_per_area_j_per_m2=cfg.checks.max_dose_energy_per_area_j_per_m2,
+            max_photons=cfg.checks.max_dose_photons,
+            **kwargs,
+        )
+    except PlanError as exc:
+        raise CommandError(str(exc)) from None
+    console.print(_table(f"Photon budget for {cfg.grid.shape[0]}x{cfg.grid.shape[1]}, K = {cfg.masks.count}",
+                         plan.summary_rows()))
+    console.print(f"Photon rate: {rate_note}.")
+    for w in plan.warnings:
+        console.print(f"[yellow]warning:[/] {w}")
+    if not plan.feasible:
+        raise CommandError(f"the precision cannot be reached under the dose limit: {plan.infeasible_reason}")
+    return 0

@@ -1,0 +1,201 @@
+"""What the live view shows, computed from stream messages (no GUI library needed).
+
+``LiveViewState.ingest(message)`` takes every message a ``stream.Subscriber``
+delivers; the GUI asks for display-ready arrays (``frame_image``,
+``amplitude_image``, ``phase_image``), the per-pass history and the status
+line, and redraws only the panels whose ``dirty`` flag is set. Only the newest
+frame and estimate are kept: a view that falls behind skips to the latest
+instead of queueing (the run file keeps everything).
+
+Frames per second are measured from frame arrival times over the last
+``FPS_WINDOW_S`` seconds. The dose shown is the number of incident photons
+counted so far in the run: the last total the daemon published (status and
+frameset messages carry ``photons_total``) plus the photons of the frames
+received since.
+"""
+
+from __future__ import annotations
+
+import collections
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .figures import log_counts, phase_for_display, saturated_pixels, unwrap_phase_ls
+from .stream import StreamMessage
+
+FPS_WINDOW_S = 3.0
+STALE_AFTER_S = 5.0
+
+
+@dataclass
+class PassRecord:
+    pass_index: int
+    residual: float
+    error_estimate: float
+    true_error: float
+
+
+@dataclass
+class LiveViewState:
+    """Latest frame and estimate, per-pass history, status. Not thread-safe: use from the GUI thread."""
+
+    log_scale: bool = True
+    unwrap: bool = False
+    frame: np.ndarray | None = None
+    frame_meta: dict = field(default_factory=dict)
+    estimate: np.ndarray | None = None
+    estimate_meta: dict = field(default_factory=dict)
+    history: dict[int, PassRecord] = field(default_factory=dict)
+    status: dict = field(default_factory=dict)
+    alerts: collections.deque = field(default_factory=lambda: collections.deque(maxlen=5))
+    received: collections.Counter = field(default_factory=collections.Counter)
+    dropped: int = 0
+    dirty: set = field(default_factory=lambda: {"frame", "estimate", "history", "status"})
+    _frame_times: collections.deque = field(default_factory=lambda: collections.deque(maxlen=2000))
+    _photons_known: float = 0.0
+    _photons_since: float = 0.0
+    _last_message_t: float | None = None
+    _log_buf: np.ndarray | None = None
+    _phase_cache: tuple | None = None
+
+    # --- input -----------------------------------------------------------------------
+    def ingest(self, msg: StreamMessage, now: float | None = None) -> None:
+        """Take one stream message (any topic; unknown topics are counted and ignored)."""
+        now = time.monotonic() if now is None else now
+        h = msg.header
+        self.received[h.topic] += 1
+        self.dropped += msg.gap
+        self._last_message_t = now
+        meta = h.meta
+        if h.topic == "frame" and msg.array is not None:
+            self.frame, self.frame_meta = msg.array, meta
+            self._frame_times.append(now)
+            self._photons_since += max(float(meta.get("photons", 0.0) or 0.0), 0.0)
+            self.dirty |= {"frame", "status"}
+        elif h.topic == "estimate" and msg.array is not None:
+            self.estimate, self.estimate_meta = msg.array, meta
+            self._phase_cache = None
+            p = int(meta.get("pass_index", len(self.history)))
+            self.history[p] = PassRecord(p, _num(meta.get("residual")), _num(meta.get("error_estimate")),
+                                         _num(meta.get("true_error")))
+            self.dirty |= {"estimate", "history", "status"}
+        elif h.topic in ("status", "frameset"):
+            if h.topic == "status":
+                if meta.get("state") == "preparing":  # a new run starts: forget the last run's curves
+                    self.history.clear()
+                    self._photons_known = self._photons_since = 0.0
+                    self.dirty.add("history")
+                self.status.update(meta)
+            if "photons_total" in meta:
+                self._photons_known = float(meta["photons_total"])
+                self._photons_since = 0.0
+            if h.topic == "frameset" and "pass_index" in meta:
+                self.status["pass_index"] = meta["pass_index"]
+            self.dirty.add("status")
+        elif h.topic in ("alert", "event"):
+            if h.topic == "alert":
+                self.alerts.append((time.strftime("%H:%M:%S", time.localtime(h.t_s)), meta.get("level", "warning"),
+                                    str(meta.get("message", ""))))
+            self.dirty.add("status")
+
+    # --- output ----------------------------------------------------------------------
+    def fps(self, now: float | None = None) -> float:
+        """Frames per second received over the last FPS_WINDOW_S seconds (0 if fewer than 2)."""
+        now = time.monotonic() if now is None else now
+        t = [x for x in self._frame_times if now - x <= FPS_WINDOW_S]
+        if len(t) < 2:
+            return 0.0
+        return (len(t) - 1) / max(t[-1] - t[0], 1e-9) if now - t[-1] < FPS_WINDOW_S else 0.0
+
+    @property
+    def photons_total(self) -> float:
+        return self._photons_known + self._photons_since
+
+    @property
+    def saturation_dn(self) -> float | None:
+        m = self.frame_meta
+        v = m.get("saturation_dn", m.get("max_dn"))
+        return float(v) if v is not None else None
+
+    def frame_levels(self) -> tuple[float, float]:
+        """Fixed colour-scale limits for the frame (so the scale does not flicker while aligning)."""
+        top = self.saturation_dn or (float(self.frame.max()) if self.frame is not None else 1.0)
+        top = max(top, 2.0)
+        return (0.0, float(np.log10(top))) if self.log_scale else (0.0, top)
+
+    def frame_image(self) -> tuple[np.ndarray, np.ndarray]:
+        """(display image float32, saturated-pixel mask bool) of the latest frame."""
+        f = self.frame
+        if self.log_scale:
+            if self._log_buf is None or self._log_buf.shape != f.shape:
+                self._log_buf = np.empty(f.shape, dtype=np.float32)
+            img = log_counts(f, out=self._log_buf)
+        else:
+            img = f.astype(np.float32, copy=False)
+        return img, saturated_pixels(f, self.saturation_dn)
+
+    def amplitude_image(self) -> np.ndarray:
+        return np.abs(self.estimate).astype(np.float32, copy=False)
+
+    def phase_image(self) -> tuple[np.ndarray, tuple[float, float]]:
+        """(phase in radians, colour limits). Wrapped: limits -pi..pi. Unwrapped: data range."""
+        key = (id(self.estimate), self.unwrap)
+        if self._phase_cache is not None and self._phase_cache[0] == key:
+            return self._phase_cache[1], self._phase_cache[2]
+        phase = phase_for_display(self.estimate)
+        if self.unwrap:
+            phase = unwrap_phase_ls(phase)
+            lo, hi = float(phase.min()), float(phase.max())
+            levels = (lo, hi if hi > lo else lo + 1e-6)
+        else:
+            levels = (-np.pi, np.pi)
+        self._phase_cache = (key, phase, levels)
+        return phase, levels
+
+    def history_arrays(self) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+        """Per-pass curves: name -> (pass number starting at 1, values), finite positive values only."""
+        recs = [self.history[k] for k in sorted(self.history)]
+        out = {}
+        for name in ("true_error", "error_estimate", "residual"):
+            x = np.array([r.pass_index + 1 for r in recs], dtype=float)
+            y = np.array([getattr(r, name) for r in recs], dtype=float)
+            ok = np.isfinite(y) & (y > 0)
+            out[name] = (x[ok], y[ok])
+        return out
+
+    def status_text(self, address: str = "", now: float | None = None) -> str:
+        """One line: state, pass, mask, frames/s, dose (photons), saturation, stream health."""
+        now = time.monotonic() if now is None else now
+        st, fm = self.status, self.frame_meta
+        parts = [f"state: {st.get('state', 'unknown (waiting for the daemon to report)')}"]
+        p = fm.get("pass_index", st.get("pass_index"))
+        passes = st.get("passes")
+        if p is not None and int(p) >= 0:
+            parts.append(f"pass {int(p) + 1}" + (f"/{passes}" if passes else ""))
+        if "mask_index" in fm:
+            parts.append(f"mask {int(fm['mask_index']) + 1}" + (f"/{st['masks']}" if st.get("masks") else ""))
+        parts.append(f"{self.fps(now):.1f} frames/s")
+        parts.append(f"dose {self.photons_total:.3g} photons")
+        if fm:
+            parts.append(f"saturated {100 * float(fm.get('saturated_fraction', 0.0)):.2f}% of pixels")
+            if fm.get("flags"):
+                parts.append("flags: " + ",".join(fm["flags"]))
+        if self._last_message_t is None:
+            parts.append(f"no data yet from {address}" if address else "no data yet")
+        elif now - self._last_message_t > STALE_AFTER_S:
+            parts.append(f"no data for {now - self._last_message_t:.0f} s")
+        if self.dropped:
+            parts.append(f"{self.dropped} messages skipped (view behind; the run file has all)")
+        return "   |   ".join(parts)
+
+    def alert_text(self) -> str:
+        return "   ".join(f"[{t}] {lvl}: {m}" for t, lvl, m in list(self.alerts)[-2:])
+
+
+def _num(v) -> float:
+    try:
+        return float(v)
+    except (TypeError, ValueError):
+        return float("nan")
