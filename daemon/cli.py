@@ -14,13 +14,19 @@ import os
 import sys
 
 from rich.console import Console
+from rich.markup import escape
 
 COMMAND_MODULES = [
     "maskrun.daemon.cmd_run",
+    "maskrun.daemon.cmd_inspect",
+    "maskrun.daemon.cmd_service",
     "maskrun.daemon.cmd_calibrate",
     "maskrun.daemon.cmd_reconstruct",
     "maskrun.daemon.cmd_worker",
     "maskrun.daemon.cmd_drivers",
+    "maskrun.daemon.cmd_view",
+    "maskrun.daemon.cmd_report",
+    "maskrun.daemon.cmd_resume",  # after cmd_service: shares the verb 'resume' (run file, or the daemon)
 ]
 
 
@@ -65,7 +71,7 @@ def main(argv: list[str] | None = None) -> int:
         if os.environ.get("MASKRUN_DEBUG"):
             raise
         for line in str(exc).splitlines():
-            err.print(f"[bold red]error:[/] {line}", soft_wrap=True)
+            err.print("[bold red]error:[/]", escape(line), soft_wrap=True)  # escape: keep "[view]" etc. literal
         return 2
     except KeyboardInterrupt:
         err.print("[bold red]interrupted[/]")

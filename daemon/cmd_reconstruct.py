@@ -71,6 +71,6 @@ def cmd_reconstruct(args) -> int:
         for set_index, msg in r.failed:
             failures += 1
             console.print(f"[bold red]{r.run_path}: frame set {set_index} failed:[/] {msg}")
-    console.print(f"computed by {runner.description}, method {options.resolved_method}, "
-                  f"{options.resolved_iterations} iterations, mode {options.mode}")
+    console.print(f"computed by {runner.description}, method {options.method}, "
+                  f"{options.iterations or 'default'} iterations, mode {options.mode}")
     return 1 if failures else 0

@@ -201,6 +201,14 @@ class ServiceConfig(_Table):
     max_request_bytes: int = Field(65536, ge=1024, le=1 << 20, description="largest control request answered")
     acknowledgement_valid_s: float = Field(43200.0, gt=0, description="how long a safety acknowledgement holds")
 
+    @field_validator("control_address", "publish_address")
+    @classmethod
+    def _zmq_address(cls, v):
+        transport = v.split("://", 1)[0] if "://" in v else ""
+        if transport not in ("tcp", "ipc", "inproc") or v.endswith("://"):
+            raise ValueError(f"{v!r} is not a ZeroMQ address; write e.g. 'tcp://127.0.0.1:5650'")
+        return v
+
 
 class FirmwareConfig(_Table):
     faults: list[dict[str, Any]] = Field(default_factory=list)

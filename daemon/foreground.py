@@ -6,6 +6,15 @@ Order of work, chosen so that bad input costs nothing:
 3. the laser-safety notice is shown and acknowledged;
 4. the run file is created (with the acknowledgement), devices opened, the run sequenced;
 5. whatever happens, the shutter is closed, the file flushed and closed, the worker stopped.
+
+Signals: SIGINT / SIGTERM ask the run to stop (the frame in progress is finished or its
+wait abandoned, the shutter closed, the file flushed and closed, and the summary says so);
+SIGUSR1 resumes a paused run (``kill -USR1 <pid>``, printed when the run pauses). A paused
+foreground run that nobody resumes stops by itself after ``[recovery] pause_timeout_s`` and
+can be continued later with ``maskrun resume RUN.h5``.
+
+``resume_foreground(path, ...)`` continues a stopped or crashed run from its last complete
+frame set, with the config stored in the file (see daemon.recovery).
 """
 
 from __future__ import annotations
@@ -25,8 +34,9 @@ from rich.table import Table
 from .bench import build_bench
 from .config import BenchConfig
 from .safety import acknowledge
+from .disk import MB, estimate_duration_s, series_passes
 from .sequencer import RunControl, RunPlan, RunSummary
-from .session import execute_run
+from .session import execute_run, plan_run_disk
 from .store import StoreError
 from .stream import Publisher
 
@@ -56,33 +66,104 @@ def check_output_folder(path: Path) -> None:
         raise StoreError(f"{folder}: output folder is not writable; set [run] output_dir or --output-dir to a folder you can write")
 
 
+def plan_for(cfg: BenchConfig, req: RunRequest, out: Path) -> RunPlan:
+    """The run plan from the config and the command line (a time series sets passes from its duration)."""
+    passes = req.passes or cfg.run.passes
+    if cfg.run.duration_s is not None and not req.passes:
+        passes = series_passes(cfg.run.interval_s, cfg.run.duration_s)
+    exposure = req.exposure_s or cfg.camera.exposure_s
+    return RunPlan(passes=passes, dark_frames=cfg.run.dark_frames, exposure_s=exposure, output_path=out,
+                   interval_s=cfg.run.interval_s)
+
+
+def describe_plan(bench, plan: RunPlan) -> list[str]:
+    """Lines shown before the run starts: frames, expected size and free disk, duration and ETA."""
+    cfg = bench.config
+    k = bench.masks.shape[0]
+    todo = plan.passes - plan.first_pass
+    readout = float(cfg.camera.settings.get("readout_latency_s", 0.0) or 0.0)
+    if cfg.camera.settings.get("real_time") is False:
+        readout = 0.0
+    duration = estimate_duration_s(passes=todo, mask_count=k, dark_frames=plan.dark_frames, exposure_s=plan.exposure_s,
+                                   settle_s=bench.modulator.settle_s, readout_s=readout, interval_s=plan.interval_s)
+    disk = plan_run_disk(bench, plan)  # DiskSpaceError: refused before anything is written
+    eta = time.strftime("%Y-%m-%d %H:%M", time.localtime(time.time() + duration))
+    series = f", one every {plan.interval_s:g} s" if plan.interval_s else ""
+    lines = [f"Plan: {todo} frame sets x {k} masks = {todo * k} frames (+ {plan.dark_frames} dark){series}, "
+             f"exposure {plan.exposure_s:g} s",
+             f"Expected: {disk.describe()}; duration about {_hms(duration)}, ETA {eta}"]
+    if disk.warning:
+        lines.append(f"[yellow]Warning:[/] {disk.warning}")
+    return lines
+
+
+def _hms(seconds: float) -> str:
+    seconds = int(round(seconds))
+    return f"{seconds // 3600:d} h {seconds % 3600 // 60:02d} min" if seconds >= 3600 else f"{seconds // 60:d} min {seconds % 60:02d} s"
+
+
 def run_foreground(cfg: BenchConfig, req: RunRequest, console: Console) -> RunSummary:
     bench = build_bench(cfg)  # ConfigError here: nothing created yet
     try:
         out = output_path_for(cfg, req)
         check_output_folder(out)
+        plan = plan_for(cfg, req, out)
+        for line in describe_plan(bench, plan):
+            console.print(line)
         ack = acknowledge(cfg.laser, console, unattended=req.acknowledge_unattended, operator=cfg.run.operator)
-        return _run(cfg, req, bench, out, ack, console)
+        return _run(cfg, req, bench, plan, ack, console)
     finally:
         bench.close()
 
 
-def _run(cfg, req, bench, out: Path, ack, console: Console) -> RunSummary:
-    passes = req.passes or cfg.run.passes
-    exposure = req.exposure_s or cfg.camera.exposure_s
-    plan = RunPlan(passes=passes, dark_frames=cfg.run.dark_frames, exposure_s=exposure, output_path=out)
+def resume_foreground(path: str | Path, req: RunRequest, console: Console) -> RunSummary:
+    """Continue a stopped or crashed run file (same config, same file, the gap recorded)."""
+    from .config import parse_config
+    from .recovery import needs_repair, repair_run_file, resume_point
+
+    path = Path(path)
+    point = resume_point(path)  # ResumeError: finished, still being written, nothing to do
+    cfg = parse_config(point.config_text, str(path))
+    bench = build_bench(cfg)
+    try:
+        plan = RunPlan(passes=point.passes, dark_frames=point.dark_frames, exposure_s=point.exposure_s,
+                       output_path=path, interval_s=point.interval_s, first_pass=point.first_pass,
+                       first_set_index=point.first_set_index, resumed=True, dose_photons_before=point.dose_photons)
+        console.print(f"Resuming [bold]{path}[/]: {point.note()}")
+        for line in describe_plan(bench, plan):
+            console.print(line)
+        ack = acknowledge(cfg.laser, console, unattended=req.acknowledge_unattended, operator=cfg.run.operator)
+        extra = ()
+        if needs_repair(path):
+            report = repair_run_file(path, int(cfg.run.min_free_disk_mb * MB))
+            console.print(report.describe())
+            extra = (("repaired", report.describe(), "info"),)
+        return _run(cfg, req, bench, plan, ack, console, append=True, resume_note=point.note(),
+                    run_name=point.run_name, extra_events=extra)
+    finally:
+        bench.close()
+
+
+def _run(cfg, req, bench, plan: RunPlan, ack, console: Console, *, append: bool = False, resume_note: str = "",
+         run_name: str | None = None, extra_events: tuple = ()) -> RunSummary:
+    out = plan.output_path
     bench.open()
     ctx = zmq.Context()
     pub = None
     control = RunControl()
+    control.resume_hint = f"kill -USR1 {os.getpid()} (after fixing the cause)"
     old_handlers = {}
 
     def _on_signal(signum, _frame):
         control.request_stop(f"interrupted by {signal.Signals(signum).name}")
 
+    def _on_resume(_signum, _frame):
+        control.resume()
+
     try:
         for sig in (signal.SIGINT, signal.SIGTERM):
             old_handlers[sig] = signal.signal(sig, _on_signal)
+        old_handlers[signal.SIGUSR1] = signal.signal(signal.SIGUSR1, _on_resume)
         pub = Publisher(ctx, cfg.stream.publish_address, hwm=cfg.stream.preview_hwm)
         console.print(f"Run file: [bold]{out}[/]")
         console.print(f"Live stream: {pub.address}")
@@ -95,9 +176,16 @@ def _run(cfg, req, bench, out: Path, ack, console: Console) -> RunSummary:
             console=console,
             transient=False,
         ) as progress:
-            task = progress.add_task("frames", total=plan.passes * bench.masks.shape[0], detail="")
+            task = progress.add_task("frames", total=(plan.passes - plan.first_pass) * bench.masks.shape[0], detail="")
+            last_state = [None]
 
             def observer(p):
+                if p.state != last_state[0]:
+                    last_state[0] = p.state
+                    if p.state.value == "paused":
+                        progress.console.print(f"[bold red]PAUSED[/] {time.strftime('%H:%M:%S')}: {p.message}")
+                    elif p.state.value == "acquiring" and p.message.startswith("resumed"):
+                        progress.console.print(f"[bold green]RESUMED[/] {time.strftime('%H:%M:%S')}: {p.message}")
                 detail = p.state.value
                 if p.pass_index >= 0:
                     detail += f" pass {p.pass_index + 1}/{plan.passes}"
@@ -108,7 +196,12 @@ def _run(cfg, req, bench, out: Path, ack, console: Console) -> RunSummary:
                 progress.update(task, completed=p.frames_done, detail=detail)
 
             summary = execute_run(bench, plan, ack, publisher=pub, zmq_context=ctx, control=control,
-                                  observer=observer, run_name=req.name or cfg.run.name)
+                                  observer=observer, run_name=run_name or req.name or cfg.run.name,
+                                  append=append, resume_note=resume_note, extra_events=extra_events)
+        if summary.state.value != "finished":
+            console.print(f"[bold]Run {summary.state.value}[/]: {summary.message}")
+            console.print(f"Shutter closed; run file flushed and closed with {summary.sets_in_file} complete frame "
+                          f"sets. Continue with: [bold]maskrun resume {out} --acknowledge-safety[/]")
     finally:
         for sig, h in old_handlers.items():
             signal.signal(sig, h)
@@ -126,7 +219,11 @@ def print_summary(summary: RunSummary, console: Console) -> None:
     t.add_row("outcome", summary.state.value + (f" ({summary.message})" if summary.message else ""))
     t.add_row("frame sets complete", str(summary.passes_complete))
     t.add_row("frames taken", f"{summary.frames} (+ {summary.darks} dark)")
-    t.add_row("frames refused", f"{summary.rejected} (stale or repeated frame ids, retaken)")
+    t.add_row("frames refused", f"{summary.rejected} (stale or repeated frame ids, retaken)"
+              + (f"; {summary.refused} kept in /entry/refused" if summary.refused else ""))
+    if summary.faults:
+        t.add_row("faults", ", ".join(f"{k} x{v}" for k, v in sorted(summary.faults.items()))
+                  + f"; {summary.recovered} recovered, {summary.pauses} pause(s)")
     t.add_row("frames flagged", f"{summary.flagged} ({summary.saturated_frames} over the saturation limit)")
     t.add_row("photons per frame", f"{summary.photons_per_frame_mean:.3g} (incident, dark-subtracted)")
     t.add_row("estimates", str(summary.estimates))

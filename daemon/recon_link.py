@@ -247,6 +247,7 @@ class ReconLink:
                 break  # local worker died; nothing more will come
             out.extend(self.poll(min(0.2, max(0.0, deadline - time.monotonic()))))
         out.extend(self._release(force=True))
+        self.outstanding.update(p for p, _ in self._pending)  # never sent (no worker connected): report them too
         return out
 
     def worker_alive(self) -> bool:
@@ -254,10 +255,13 @@ class ReconLink:
 
     def close(self) -> None:
         if self.process is not None and self.process.poll() is None:
-            try:
-                self.push.send_multipart([b"stop", b"{}", b""], flags=zmq.NOBLOCK)
-            except zmq.ZMQError:
-                pass
+            # round robin: with remote workers connected (they ignore 'stop') one message might not reach
+            # the local worker, so send a few
+            for _ in range(8):
+                try:
+                    self.push.send_multipart([b"stop", b"{}", b""], flags=zmq.NOBLOCK)
+                except zmq.ZMQError:
+                    break
             try:
                 self.process.wait(timeout=3)
             except subprocess.TimeoutExpired:

@@ -129,15 +129,15 @@ def start_link_authenticator(context: zmq.Context, keys: ServerKeys, extra_publi
 
 
 def local_worker_keys(server_public: bytes) -> tuple[ClientKeys, str]:
-    """A fresh key pair for the local worker and its environment value (public:secret:server, Z85)."""
+    """A fresh key pair for the local worker and its environment value (public,secret,server; Z85)."""
     public, secret = zmq.curve_keypair()
     keys = ClientKeys(public, secret, server_public)
-    return keys, b":".join((public, secret, server_public)).decode()
+    return keys, b",".join((public, secret, server_public)).decode()  # "," is not in the Z85 alphabet
 
 
 def client_keys_from_env() -> ClientKeys | None:
     value = os.environ.get(LOCAL_WORKER_KEYS_ENV)
     if not value:
         return None
-    public, secret, server_public = (v.encode() for v in value.split(":"))
+    public, secret, server_public = (v.encode() for v in value.split(","))
     return ClientKeys(public, secret, server_public)

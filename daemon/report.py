@@ -176,6 +176,19 @@ def _empty(ax, text):
     ax.set_yticks([])
 
 
+def _planned_passes(story: RunStory) -> int | None:
+    """Passes asked for when the run started (from the 'run_start' log entry; a service run may override the
+    config)."""
+    import re
+
+    for e in story.events:
+        if e["kind"] == "run_start":
+            m = re.search(r"(\d+) passes", e["message"])
+            if m:
+                return int(m.group(1))
+    return None
+
+
 def _config_summary(story: RunStory) -> list[str]:
     import tomllib
 
@@ -192,7 +205,7 @@ def _config_summary(story: RunStory) -> list[str]:
         f"class {cfg.get('laser', {}).get('laser_class', '?')}",
         f"camera '{cam.get('driver', '?')}', exposure {cam.get('exposure_s', '?')} s, {story.bit_depth} bit",
         f"modulator '{mod.get('driver', '?')}', safety box '{saf.get('driver', '?')}'",
-        f"passes planned {run.get('passes', '?')}, dark frames {story.dark_count}",
+        f"passes planned {_planned_passes(story) or run.get('passes', '?')}, dark frames {story.dark_count}",
         f"reconstruction {rec.get('mode', 'default')}, {rec.get('iterations_per_update', '?')} iterations per update",
     ]
     if "simulation" in cfg:
@@ -206,7 +219,6 @@ def render_report_png(run_path: str | Path, png_path: str | Path, story: RunStor
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
-    from matplotlib.colors import ListedColormap
 
     s = story or read_story(run_path)
     png_path = Path(png_path)
@@ -219,8 +231,8 @@ def render_report_png(run_path: str | Path, png_path: str | Path, story: RunStor
     n_frames = len(s.frame_info)
     colour = {"finished": "black"}.get(s.outcome, _VERMILLION)
     fig.text(0.05, 0.975, f"maskrun run report: {s.run_name}", fontsize=17, weight="bold", va="top")
-    fig.text(0.05, 0.948, f"outcome: {s.outcome}", fontsize=12, color=colour, va="top", weight="bold")
-    fig.text(0.18, 0.948, s.outcome_message, fontsize=10, va="top", color=colour)
+    fig.text(0.05, 0.948, f"outcome: {s.outcome}  ({s.outcome_message})", fontsize=12, color=colour, va="top",
+             weight="bold")
     sat_frames = s.flag_counts.get("saturated", 0)
     photons = float(np.sum(np.maximum(s.frame_info["photons"], 0))) if n_frames else 0.0
     fig.text(0.05, 0.928,
@@ -316,8 +328,8 @@ def render_report_png(run_path: str | Path, png_path: str | Path, story: RunStor
                     markeredgewidth=2, label="outside the photon limits")
         ax.legend(fontsize=8, loc="lower right")
         ax.set_xlabel(f"time since run start ({unit})")
-        ax.set_ylabel(f"incident photons per frame (x 10^{exp10})")
-        ax.set_ylim(0, max(1.15 * float(np.nanmax(ph_scaled)), 1e-9))
+        ax.set_ylabel("incident photons per frame" + (f" (x 10^{exp10})" if exp10 else ""))
+        ax.set_ylim(0, 1.15 * float(np.nanmax(ph_scaled)) if top > 0 else 1.0)
         ax.grid(True, alpha=0.3)
     else:
         _empty(ax, "no frames")
@@ -410,8 +422,7 @@ def _draw_timeline(ax, s: RunStory, scale: float, unit: str) -> None:
     ax.set_xlabel(f"time since run start ({unit})")
     ax.grid(True, axis="x", alpha=0.3)
     if len(rows) == 1:
-        ax.text(0.99, 0.25, "no warnings, errors or flagged frames", transform=ax.transAxes, ha="right",
-                va="center", color=_BLUE, fontsize=10)
+        ax.set_title("timeline: milestones (no warnings, errors or flagged frames in this run)")
 
 
 # ----------------------------------------------------------------------------------- HTML

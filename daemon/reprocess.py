@@ -14,8 +14,8 @@ same bits wherever it runs:
   from the config stored in the run file, ``numpy.fft.ifftshift`` to the grid
   orientation (zero frequency at [0, 0]) and negative values clamped to 0;
 - solve: ``maskrun.reconstruct.solve`` with a fixed FFT backend (numpy's
-  pocketfft, single-threaded) instead of the timed per-process choice, a
-  fixed seed for the spectral initialization, no time budget (wall-clock
+  pocketfft) and one solver thread instead of the timed per-process choices,
+  a fixed seed for the spectral initialization, no time budget (wall-clock
   limits would make the result depend on the machine's load);
 - units: the estimate is multiplied by 1/sqrt(QE * exposure_s) as in the live
   path, so it is in sqrt(incident photons per second).
@@ -97,15 +97,16 @@ class ReprocessOptions(BaseModel):
             raise ValueError(f"unknown method {v!r}; choose one of {', '.join(METHODS)}")
         return v
 
-    @property
-    def resolved_method(self) -> str:
-        return "hybrid" if self.method == "auto" else self.method
+    def resolved_method(self, mask_count: int) -> str:
+        """The method used for K = mask_count ("auto" picks as ``solve`` does: RAAR for K <= 4, else hybrid)."""
+        from maskrun.reconstruct.solvers import default_method
 
-    @property
-    def resolved_iterations(self) -> int:
+        return default_method(mask_count) if self.method == "auto" else self.method
+
+    def resolved_iterations(self, mask_count: int) -> int:
         from maskrun.reconstruct.solvers import DEFAULT_ITERATIONS
 
-        return self.iterations if self.iterations is not None else DEFAULT_ITERATIONS[self.resolved_method]
+        return self.iterations if self.iterations is not None else DEFAULT_ITERATIONS[self.resolved_method(mask_count)]
 
     @property
     def dtype(self):
@@ -208,10 +209,30 @@ def _run_context(path: str) -> _RunContext:
     return ctx
 
 
+_ONE_CORE = False
+
+
+def _one_core() -> None:
+    """Solve on one thread: the solver's measured choice of threads (masks split over threads, partial
+    sums added in another order) could differ between processes and change the last bits. Caps this
+    process's reconstruction threads for good (``maskrun.reconstruct.fft.set_max_workers(1)``)."""
+    global _ONE_CORE
+    if not _ONE_CORE:
+        from maskrun.reconstruct.fft import set_max_workers
+
+        set_max_workers(1)
+        _ONE_CORE = True
+
+
 def process_frame_set(task: FrameSetTask) -> FrameSetResult:
-    """Read the task's frames from its run file, convert, solve. Deterministic for given inputs."""
+    """Read the task's frames from its run file, convert, solve. Deterministic for given inputs.
+
+    Runs the solver on one thread in this process (see ``_one_core``); parallelism comes from
+    running many tasks at once.
+    """
     from maskrun.reconstruct import relative_error, shot_noise_relative_error, solve
 
+    _one_core()
     ctx = _run_context(task.run_path)
     opts = task.options
     acc = None
@@ -225,8 +246,9 @@ def process_frame_set(task: FrameSetTask) -> FrameSetResult:
     data = acc / len(task.sets)
     exposure_s = float(ctx.exposure_s[task.sets[-1][-1]])
     t0 = time.perf_counter()
-    res = solve(data, ctx.masks, method=opts.resolved_method, iterations=opts.resolved_iterations, dtype=opts.dtype,
-                seed=opts.seed, fft_backend=FFT_BACKEND)
+    k = ctx.masks.shape[0]
+    res = solve(data, ctx.masks, method=opts.resolved_method(k), iterations=opts.resolved_iterations(k),
+                dtype=opts.dtype, seed=opts.seed, fft_backend=FFT_BACKEND)
     elapsed = time.perf_counter() - t0
     scale = 1.0 / float(np.sqrt(ctx.response.quantum_efficiency * exposure_s))
     est = (res.estimate * scale).astype(opts.dtype)
@@ -258,11 +280,16 @@ def plan_tasks(run_path: str | Path, options: ReprocessOptions) -> list[FrameSet
     return tasks
 
 
-def results_path_for(run_path: str | Path, options: ReprocessOptions, output_dir: str | Path | None = None) -> Path:
-    """``RUN.recon-<method>-<iterations>[-cumulative].h5`` beside the run (or in output_dir)."""
+def results_path_for(run_path: str | Path, options: ReprocessOptions, output_dir: str | Path | None = None,
+                     mask_count: int | None = None) -> Path:
+    """``RUN.recon-<method used>-<iterations>[-cumulative].h5`` beside the run (or in output_dir)."""
     run_path = Path(run_path)
+    if mask_count is None:
+        with RunFile(run_path) as rf:
+            mask_count = rf.mask_count
     suffix = "-cumulative" if options.mode == "cumulative" else ""
-    name = f"{run_path.stem}.recon-{options.resolved_method}-{options.resolved_iterations}{suffix}.h5"
+    name = (f"{run_path.stem}.recon-{options.resolved_method(mask_count)}-"
+            f"{options.resolved_iterations(mask_count)}{suffix}.h5")
     return (Path(output_dir) if output_dir else run_path.parent) / name
 
 
@@ -322,7 +349,7 @@ class ReprocessReport:
     failed: list[tuple[int, str]] = field(default_factory=list)  # (set_index, message)
 
 
-def _provenance(options: ReprocessOptions, runner_description: str, wall_s: float) -> dict:
+def _provenance(options: ReprocessOptions, mask_count: int, runner_description: str, wall_s: float) -> dict:
     import importlib.metadata
 
     try:
@@ -331,8 +358,9 @@ def _provenance(options: ReprocessOptions, runner_description: str, wall_s: floa
         version = "unknown"
     return {
         "method": options.method,
-        "method_used": options.resolved_method,
-        "iterations": options.resolved_iterations,
+        "method_used": options.resolved_method(mask_count),
+        "iterations": options.resolved_iterations(mask_count),
+        "solver_threads": 1,
         "mode": options.mode,
         "precision": options.precision,
         "seed": options.seed,
@@ -432,17 +460,19 @@ def reprocess_runs(
     run_paths = [Path(p) for p in run_paths]
     if not run_paths:
         raise ReprocessError("give at least one run file")
-    plans: list[tuple[Path, Path, list[FrameSetTask]]] = []
+    plans: list[tuple[Path, Path, list[FrameSetTask], int]] = []
     for p in run_paths:
         tasks = plan_tasks(p, options)
-        out = results_path_for(p, options, output_dir)
+        with RunFile(p) as rf:
+            k = rf.mask_count
+        out = results_path_for(p, options, output_dir, k)
         if out.exists() and not overwrite:
             raise ReprocessError(f"{out} already exists; remove it, choose --output-dir, or pass --overwrite")
         folder = out.parent
         if not folder.is_dir() or not os.access(folder, os.W_OK):
             raise ReprocessError(f"{folder}: results folder is missing or not writable; choose --output-dir")
-        plans.append((p, out, tasks))
-    all_tasks = [t for _, _, ts in plans for t in ts]
+        plans.append((p, out, tasks, k))
+    all_tasks = [t for _, _, ts, _ in plans for t in ts]
     if on_planned:
         on_planned(len(all_tasks))
     done: dict[str, list[FrameSetResult]] = {t.run_path: [] for t in all_tasks}
@@ -460,10 +490,11 @@ def reprocess_runs(
 
     t0 = time.monotonic()
     runner.run(all_tasks, _done, _error)
-    prov = _provenance(options, runner.description, time.monotonic() - t0)
+    wall_s = time.monotonic() - t0
     reports = []
-    for p, out, tasks in plans:
+    for p, out, tasks, k in plans:
         key = tasks[0].run_path
+        prov = _provenance(options, k, runner.description, wall_s)
         written = write_results(out, key, done[key], prov, sorted(failed[key])) if done[key] else None
         reports.append(ReprocessReport(p, written, len(done[key]), sorted(failed[key])))
     return reports

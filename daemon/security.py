@@ -41,6 +41,10 @@ class InsecureBinding(ValueError):
     """The control socket would be reachable from other machines without keys."""
 
 
+class BadAddress(ValueError):
+    """Not a ZeroMQ endpoint."""
+
+
 class KeyFileError(ValueError):
     """A key file is missing or unreadable; the message says which and how to make it."""
 
@@ -48,7 +52,7 @@ class KeyFileError(ValueError):
 def address_host(address: str) -> tuple[str, str]:
     """(transport, host) of a ZeroMQ endpoint such as tcp://127.0.0.1:5650 or ipc:///tmp/x."""
     if "://" not in address:
-        raise ValueError(f"{address!r} is not a ZeroMQ address (expected e.g. tcp://127.0.0.1:5650)")
+        raise BadAddress(f"{address!r} is not a ZeroMQ address (expected e.g. tcp://127.0.0.1:5650)")
     transport, rest = address.split("://", 1)
     if transport != "tcp":
         return transport, rest

@@ -27,7 +27,8 @@ device disconnected         reconnect attempts (``reconnect_attempts``, same bac
 stale frame (id repeated)   refused and retaken (up to ``stale_retakes``, then pause)
 dropped frame (id gap)      the frame is refused (kept in /entry/refused) and retaken
 interlock open              shutter closed, run paused; it continues only when the
-                            interlock reads closed AND the user resumes
+                            interlock reads closed AND the user resumes (open before the
+                            first frame of the run: the run does not start, 'fault')
 shutter found closed after  the frame is refused (kept in /entry/refused) and retaken
 an exposure
 saturation above the limit  ``saturation_action``: 'flag' (keep, flagged), 'shorten'
@@ -277,6 +278,7 @@ class Sequencer:
         self._stop_after_frame = ""
         self._last_photons = 0.0
         self._roi = None
+        self._light_started = False  # the interlock must read closed at the start; later it pauses the run
         self.disk = DiskGuard(Path(plan.output_path).parent, int(cfg.run.min_free_disk_mb * MB), store.bytes_per_frame)
         self.dose = self._make_dose_ledger()
 
@@ -592,13 +594,19 @@ class Sequencer:
         while True:
             if not self._call("safety", safety.interlock_closed, "reading the interlock"):
                 self._safe_state()
+                if not self._light_started:
+                    raise InterlockOpen(
+                        "interlock reads OPEN at the start of the run: the shutter stays closed. Close the "
+                        "enclosure/door interlock, then start the run again")
                 self._fault("interlock_open", "the interlock reads OPEN: shutter closed, run paused", "error")
                 self._pause("the interlock is open (door or enclosure)", kind="paused", interlock=True)
                 continue
             if self._call("safety", safety.shutter_is_open, "reading the shutter"):
+                self._light_started = True
                 return
             try:
                 self._call("safety", self._open_shutter, "opening the shutter")
+                self._light_started = True
                 return
             except InterlockOpen:
                 continue  # it opened in between: pause above

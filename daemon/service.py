@@ -54,6 +54,7 @@ from .security import (
     apply_server_keys,
     check_control_binding,
     connect_host_for,
+    is_loopback_address,
     load_server_keys,
     start_authenticator,
 )
@@ -236,7 +237,6 @@ class Service:
             if len(parts) != 1:
                 raise C.BadRequest(f"a request is one message part holding JSON; got {len(parts)} parts")
             req = C.parse_request(raw, self.cfg.service.max_request_bytes)
-            self._housekeeping()
             result = self.handle(req)
             reply = C.ok_reply(result, self.state)
         except (C.BadRequest, Refused) as exc:
@@ -306,7 +306,15 @@ class Service:
         plan = RunPlan(passes=req.passes or cfg.run.passes,
                        dark_frames=cfg.run.dark_frames if req.dark_frames is None else req.dark_frames,
                        exposure_s=req.exposure_s or self.exposure_s, output_path=out, interval_s=req.interval_s)
+        if self.recon is not None and not self.recon.worker_alive():
+            # the local reconstruction worker died since the last run: start a fresh one
+            self.log("reconstruction worker had exited; starting a new one")
+            self.recon.close()
+            from .session import make_recon_link
+
+            self.recon = make_recon_link(self.bench, self.ctx)
         control = RunControl()
+        control.resume_hint = "'maskrun resume' (the service's 'resume' request)"
         k = self.bench.masks.shape[0]
         progress = {"state": "preparing", "pass_index": -1, "mask_index": -1, "frames_done": 0,
                     "frames_total": plan.passes * k, "photons_last": 0.0, "saturated_last": 0.0, "photons_total": 0.0,
@@ -370,8 +378,6 @@ class Service:
                 "final_error_estimate": s.final_error_estimate if s else None,
                 "wall_s": s.wall_s if s else time.monotonic() - act.t_start,
             }
-            if s is not None:
-                self.exposure_s = act.plan.exposure_s
             self.state = "idle"
 
     def _do_pause(self, req: C.PauseRequest) -> dict:
@@ -504,6 +510,8 @@ class Service:
 
             optics.set_sample(phase_target(self.bench.grid_shape, wavelength_m=self.cfg.laser.wavelength_m).field)
         self.bench.truth = optics.truth_field()
+        if self.state == "idle":
+            self._housekeeping()  # the status shows the new interlock state at once
         return {"action": req.action, "interlock_closed": optics.interlock_closed}
 
     # --- state and status --------------------------------------------------------------------
@@ -559,9 +567,15 @@ class Service:
             photons_now = run["photons_total"]
         align = None
         interlock, shutter = self.interlock_closed, self.shutter_open
+        safety_source = "read from the safety box while idle"
+        if run is not None:
+            # the run thread alone talks to the safety box: the shutter is open exactly while acquiring
+            shutter = state == "acquiring"
+            safety_source = "inferred from the run state (the sequencer checks the interlock before every frame)"
         if self._align is not None and state == "align":
             align = self._align.figures.to_dict()
             interlock, shutter = self._align.interlock_closed, self._align.shutter_open
+            safety_source = "read by the align loop before every frame"
         elif self._align is not None and self._align.error:
             align = {"message": self._align.error}
         photons = self.photons_lifetime + photons_now
@@ -576,7 +590,7 @@ class Service:
             "publish_address": self.publish_address,
             "curve": self.keys is not None,
             "safety": {"acknowledged": ack is not None, "acknowledgement": ack, "interlock_closed": interlock,
-                       "shutter_open": shutter, "laser_class": self.cfg.laser.laser_class,
+                       "shutter_open": shutter, "source": safety_source, "laser_class": self.cfg.laser.laser_class,
                        "wavelength_m": self.cfg.laser.wavelength_m},
             "exposure_s": self.exposure_s,
             "masks": int(self.bench.masks.shape[0]) if self.bench is not None else 0,
@@ -592,6 +606,9 @@ class Service:
             "recent_alerts": list(self.pub.recent_alerts)[-10:] if self.pub is not None else [],
             "stream_sent": dict(self.pub.sent) if self.pub is not None else {},
             "runs_started": self.runs_started,
+            "reconstruction": None if self.recon is None else {
+                "worker_pid": self.recon.process.pid if self.recon.process is not None else None,
+                "worker_alive": self.recon.worker_alive()},
         }
 
 
@@ -610,6 +627,8 @@ def serve(cfg: BenchConfig, *, control_address: str | None = None, publish_addre
     def ready(info: dict) -> None:
         log(f"maskrun service ready: control {info['control_address']}, stream {info['publish_address']}"
             f"{' (CURVE keys)' if info['curve'] else ' (loopback only)'}; shutter closed, idle")
+        if not is_loopback_address(info["publish_address"]):
+            log("note: the stream is reachable from other machines (read-only, not encrypted)")
         if ready_file:
             tmp = Path(ready_file).with_suffix(".tmp")
             tmp.write_text(json.dumps(info))

@@ -1,17 +1,24 @@
-"""One run on an open bench: create the run file, start the reconstruction link,
-sequence, and close what the run owns. Used by `maskrun run/demo` (foreground)
-and by the service (`maskrun serve`), which keeps the bench and the publisher
-open between runs.
+"""One run on an open bench: create (or, for a resume, reopen) the run file, start the
+reconstruction link, sequence, and close what the run owns. Used by `maskrun run/demo`
+and `maskrun resume` (foreground) and by the service (`maskrun serve`), which keeps the
+bench and the publisher open between runs.
+
+Before a new file is created the disk is planned (``disk.plan_disk``): a run that
+cannot fit is refused with ``DiskSpaceError`` and nothing is written.
 """
 
 from __future__ import annotations
 
+import json
+import os
+import socket
 from typing import Callable
 
 import numpy as np
 import zmq
 
 from .bench import Bench
+from .disk import MB, DiskPlan, expected_run_bytes, frame_itemsize, plan_disk
 from .recon_link import ReconLink
 from .safety import Acknowledgement
 from .sequencer import Progress, RunControl, RunPlan, RunSummary, Sequencer
@@ -19,8 +26,9 @@ from .store import RunHeader, RunStore
 from .stream import Publisher
 
 
-def run_header(bench: Bench, ack: Acknowledgement, run_name: str) -> RunHeader:
+def run_header(bench: Bench, ack: Acknowledgement, run_name: str, plan: RunPlan | None = None) -> RunHeader:
     cfg = bench.config
+    extra = {"run_plan": json.dumps(plan.to_record())} if plan is not None else None
     return RunHeader(
         run_name=run_name,
         config_toml=cfg.source_text,
@@ -31,6 +39,7 @@ def run_header(bench: Bench, ack: Acknowledgement, run_name: str) -> RunHeader:
         laser_wavelength_m=cfg.laser.wavelength_m,
         camera_bit_depth=bench.camera.bit_depth,
         truth=bench.truth,
+        extra_attrs=extra,
     )
 
 
@@ -40,9 +49,25 @@ def make_recon_link(bench: Bench, zmq_context: zmq.Context) -> ReconLink | None:
         return None
     spec = {"family": cfg.masks.family, "count": cfg.masks.count, "shape": bench.grid_shape,
             "seed": cfg.masks.seed, "levels": cfg.masks.levels}
-    from .remote_workers import link_options
+    from .remote_workers import link_options  # worker address, local worker on/off, CURVE keys (scale-out)
 
     return ReconLink(zmq_context, bench.masks, spec, cfg.reconstruction, **link_options(cfg))
+
+
+def expected_bytes(bench: Bench, plan: RunPlan) -> int:
+    """Expected growth of the run file for the passes still to take (plus the fixed parts for a new file)."""
+    cfg = bench.config
+    est = expected_run_bytes(grid_shape=bench.grid_shape, mask_count=bench.masks.shape[0],
+                             passes=plan.passes - plan.first_pass, dark_frames=plan.dark_frames,
+                             frame_itemsize=frame_itemsize(bench.camera.bit_depth),
+                             estimates=cfg.reconstruction.enabled, truth=bench.truth is not None)
+    return est.bytes_total
+
+
+def plan_run_disk(bench: Bench, plan: RunPlan) -> DiskPlan:
+    """Disk check for ``plan`` (raises DiskSpaceError when it cannot fit above the reserve)."""
+    return plan_disk(plan.output_path.parent, expected_bytes(bench, plan),
+                     int(bench.config.run.min_free_disk_mb * MB))
 
 
 def execute_run(
@@ -56,13 +81,34 @@ def execute_run(
     observer: Callable[[Progress], None] | None = None,
     run_name: str = "run",
     recon: ReconLink | None = None,
+    append: bool = False,
+    resume_note: str = "",
+    extra_events: tuple = (),
 ) -> RunSummary:
     """Run ``plan`` on the (open) bench. The bench and the publisher stay open; the run file and a
-    reconstruction link made here are closed before returning, whatever happens."""
-    store = RunStore.create(plan.output_path, run_header(bench, ack, run_name))
+    reconstruction link made here are closed before returning, whatever happens.
+
+    append=True continues an existing (closed or repaired, see daemon.recovery) run file: the
+    'resume' event (with ``resume_note``: the gap) and the new acknowledgement are logged, and the
+    plan's first_pass / first_set_index say where to continue. ``extra_events`` are (kind, message,
+    level) logged after the acknowledgement (e.g. the repair report)."""
+    disk = plan_run_disk(bench, plan)  # DiskSpaceError: nothing written yet
+    if append:
+        store = RunStore.reopen(plan.output_path)
+    else:
+        store = RunStore.create(plan.output_path, run_header(bench, ack, run_name, plan))
     own_recon = recon is None
     try:
+        if append:
+            store.log("resume", f"resumed at pass {plan.first_pass} (set {plan.first_set_index}); {resume_note}".rstrip("; "),
+                      "warning")
         store.log("safety_ack", f"laser-safety notice acknowledged by {ack.who} via {ack.how} at {ack.when_utc}")
+        store.log("writer", f"pid {os.getpid()} on {socket.gethostname()}")
+        for kind, message, level in extra_events:
+            store.log(kind, message, level)
+        store.log("disk_plan", disk.describe(), "info")
+        if disk.warning:
+            store.log("disk_warning", disk.warning, "warning")
         if own_recon:
             recon = make_recon_link(bench, zmq_context)
         else:
@@ -73,6 +119,11 @@ def execute_run(
         try:
             bench.safety.close_shutter()
         finally:
-            if own_recon and recon is not None:
-                recon.close()
-            store.close()
+            try:
+                if own_recon and recon is not None:
+                    recon.close()
+            finally:
+                try:
+                    store.close()
+                except OSError:
+                    pass  # a full disk: what was flushed before is in the file

@@ -291,6 +291,12 @@ class RunStore:
             info_ds.resize(count + 1, axis=0)
             info_ds[count] = info
         except (OSError, RuntimeError) as exc:
+            for ds in (data_ds, info_ds):  # best effort: no half-written row stays visible
+                try:
+                    if ds.shape[0] > count:
+                        ds.resize(count, axis=0)
+                except Exception:
+                    pass
             raise self._write_error(exc) from None
         return count
 
@@ -351,19 +357,42 @@ class RunStore:
             raise self._write_error(exc) from None
 
     def close(self) -> None:
-        """Flush and close. After a write failure the close is still attempted; its error is raised
-        as StoreWriteError only after the handle is released."""
-        if self._f.id.valid:
+        """Flush and close. After a write failure (disk full) the handles are still released: dataset
+        handles first, then the file (closing a file whose flush failed while dataset handles are alive
+        can crash HDF5 later, at garbage collection); the error is raised after that."""
+        if not self._f.id.valid:
+            return
+        err = None
+        try:
+            self._f.flush()
+        except (OSError, RuntimeError) as exc:
+            err = self._write_error(exc)
+        import gc
+        import sys
+
+        previous_hook = sys.unraisablehook
+
+        def _quiet_after_write_error(u):
+            # releasing a handle retries the failed metadata write; that failure is already reported as err
+            if err is not None and isinstance(u.exc_value, RuntimeError) and "decrement id ref count" in str(u.exc_value):
+                return
+            previous_hook(u)
+
+        sys.unraisablehook = _quiet_after_write_error
+        try:
+            for name in ("_frames", "_frame_info", "_darks", "_dark_info", "_estimates", "_estimate_info", "_events",
+                         "_refused", "_refused_info"):
+                setattr(self, name, None)
+            gc.collect()
             try:
-                self._f.flush()
-            except (OSError, RuntimeError) as exc:
-                err = self._write_error(exc)
-                try:
-                    self._f.close()
-                except Exception:
-                    pass
-                raise err from None
-            self._f.close()
+                self._f.close()
+            except Exception as exc:
+                err = err or self._write_error(exc)
+            gc.collect()
+        finally:
+            sys.unraisablehook = previous_hook
+        if err is not None:
+            raise err
 
     @property
     def closed(self) -> bool:

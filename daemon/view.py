@@ -7,11 +7,20 @@ phase estimates (phase with the cyclic 'twilight' map, or unwrapped with
 frames per second, dose in photons, saturation, stream health) with the latest
 alerts underneath.
 
-Library: Qt (PySide6) with pyqtgraph, chosen by measurement (bench/view_bench.py:
-it keeps up with 512 x 512 frames well above 20 updates per second on a 2-core
-machine, where matplotlib with blitting does not). Both come with the optional
-extra ``view`` (``pip install 'maskrun[view]'``) so the daemon stays light; this
-module imports them only inside ``run_view``/``LiveViewWindow``.
+Library: Qt (PySide6) with pyqtgraph, chosen by measurement (bench/view_bench.py,
+512 x 512, 2 shared cores, Xvfb): it redraws everything that changes (frame,
+amplitude, phase, titles, colour-bar limits, the error plot) at 49-62 updates/s
+and frames alone at 250-290/s; a 30 frames/s stream is drawn in full. matplotlib
+with blitting reached 31-40 and 131-182 updates/s for image data only; new
+titles, colour-bar limits or plot ranges need a full redraw there, 6-8
+updates/s. pyqtgraph also gives zoom and pan with the mouse, which alignment
+needs. Both libraries come with the optional extra ``view``
+(``pip install 'maskrun[view]'``) so the daemon stays light; this module imports
+them only inside ``run_view``/``window_class``.
+
+Titles and colour-bar limits are set only when they change, the amplitude scale
+is rounded up to a round number, and the saturation overlay is hidden when no
+pixel is saturated: each of these avoids re-laying out and repainting the axes.
 
 The view never slows the daemon: it subscribes to the PUB stream, drains
 whatever has arrived every ``POLL_MS`` milliseconds and draws only the newest
@@ -84,6 +93,33 @@ def normalise_address(address: str) -> str:
     raise ValueError(f"stream address {address!r} is not of the form tcp://HOST:PORT, HOST:PORT or PORT")
 
 
+def nice_ceiling(x: float) -> float:
+    """The smallest of 1, 1.2, 1.5, 2, 2.5, 3, 4, 5, 6, 8 times a power of ten that is >= x (x <= 0: 1)."""
+    if not (x > 0 and np.isfinite(x)):
+        return 1.0
+    k = np.floor(np.log10(x))
+    for m in (1, 1.2, 1.5, 2, 2.5, 3, 4, 5, 6, 8, 10):
+        if m * 10.0**k >= x * (1 - 1e-12):
+            return float(m * 10.0**k)
+    return float(10.0 ** (k + 1))
+
+
+def log_ticks(lo: float, hi: float, max_ticks: int = 7) -> list[tuple[float, str]]:
+    """Tick marks for a log axis as (log10 value, label): the coarsest of 1 / 1-2-5 / 1..9 steps per
+    decade that gives at least 3 ticks near [lo, hi], thinned to at most max_ticks."""
+    lo = max(lo, 1e-300)
+    hi = max(hi, lo)
+    k0, k1 = int(np.floor(np.log10(lo))) - 1, int(np.ceil(np.log10(hi))) + 1
+    picked: list[float] = []
+    for mants in ((1,), (1, 2, 5), tuple(range(1, 10))):
+        picked = [m * 10.0**k for k in range(k0, k1 + 1) for m in mants if lo / 1.3 <= m * 10.0**k <= hi * 1.3]
+        if len(picked) >= 3:
+            break
+    if len(picked) > max_ticks:
+        picked = picked[:: int(np.ceil(len(picked) / max_ticks))]
+    return [(float(np.log10(v)), f"{v:g}") for v in picked]
+
+
 # ------------------------------------------------------------------------------------- Qt part
 def _build_window_class():
     """Define the Qt classes after PySide6/pyqtgraph are imported (keeps this module importable without them)."""
@@ -104,6 +140,12 @@ def _build_window_class():
         def paintEvent(self, ev):  # noqa: N802 (Qt name)
             self.paints += 1
             super().paintEvent(ev)
+
+    def colour_bar(values, colour_map, label):
+        bar = pg.ColorBarItem(values=values, colorMap=colour_map, interactive=False, width=14)
+        bar.getAxis("right").setLabel(label)  # label outside the tick values, away from the image
+        bar.getAxis("right").setWidth(62)
+        return bar
 
     def image_plot(layout, row, col, title, xlabel, ylabel):
         p = layout.addPlot(row=row, col=col, title=title)
@@ -139,30 +181,38 @@ def _build_window_class():
             self.sat_img.setLookupTable(np.array([[0, 0, 0, 0], [*SATURATED_RGB, 255]], dtype=np.uint8))
             self.sat_img.setZValue(10)
             self.frame_plot.addItem(self.sat_img)
-            self.frame_bar = pg.ColorBarItem(values=(0, 4), colorMap=self._colour_maps[INTENSITY_CMAP],
-                                             label="counts, log10(DN)", interactive=False, width=14)
+            # intensity centroid (align mode sends it): white cross on a black cross, visible on any colour
+            self.centroid = pg.ScatterPlotItem(symbol="+", size=22, pen=pg.mkPen("k", width=5),
+                                               brush=None, pxMode=True)
+            self.centroid_inner = pg.ScatterPlotItem(symbol="+", size=20, pen=pg.mkPen("w", width=2),
+                                                     brush=None, pxMode=True)
+            for item in (self.centroid, self.centroid_inner):
+                item.setZValue(20)
+                self.frame_plot.addItem(item)
+            self.frame_bar = colour_bar((0, 4), self._colour_maps[INTENSITY_CMAP], "counts, log10(DN)")
             self.frame_bar.setImageItem(self.frame_img, insert_in=self.frame_plot)
 
             self.amp_plot, self.amp_img = image_plot(g, 0, 1, "amplitude estimate", "sample column (grid pixel)",
                                                      "sample row (grid pixel)")
-            self.amp_bar = pg.ColorBarItem(values=(0, 1), colorMap=self._colour_maps[INTENSITY_CMAP],
-                                           label="amplitude, sqrt(photons/s)", interactive=False, width=14)
+            self.amp_bar = colour_bar((0, 1), self._colour_maps[INTENSITY_CMAP], "amplitude, sqrt(photons/s)")
             self.amp_bar.setImageItem(self.amp_img, insert_in=self.amp_plot)
 
             self.phase_plot, self.phase_img = image_plot(g, 0, 2, "phase estimate (wrapped)",
                                                          "sample column (grid pixel)", "sample row (grid pixel)")
-            self.phase_bar = pg.ColorBarItem(values=(-np.pi, np.pi), colorMap=self._colour_maps[PHASE_CMAP],
-                                             label="phase (rad)", interactive=False, width=14)
+            self.phase_bar = colour_bar((-np.pi, np.pi), self._colour_maps[PHASE_CMAP], "phase (rad)")
+            self._phase_labels = {False: "phase (rad), cyclic colours", True: "phase (rad), unwrapped"}
             self.phase_bar.setImageItem(self.phase_img, insert_in=self.phase_plot)
 
             self.hist_plot = g.addPlot(row=1, col=0, colspan=3, title="reconstruction quality per pass")
             self.hist_plot.setLogMode(x=False, y=True)
-            self.hist_plot.setLabel("bottom", "pass (frame sets taken so far)")
-            self.hist_plot.setLabel("left", "relative error / residual (dimensionless)")
+            self.hist_plot.setLabel("bottom", "pass, or frame set in align mode")
+            self.hist_plot.setLabel("left", "relative error")
+            self.hist_plot.getAxis("left").enableAutoSIPrefix(False)
             self.hist_plot.showGrid(x=True, y=True, alpha=0.3)
             self.hist_plot.setMenuEnabled(False)
             self.hist_plot.hideButtons()
-            legend = self.hist_plot.addLegend(offset=(-10, 10))
+            legend = self.hist_plot.addLegend(offset=(12, -8), labelTextSize="9pt", brush=(255, 255, 255, 210),
+                                              pen=(180, 180, 180), verSpacing=-6)
             dash = {"-": QtCore.Qt.SolidLine, "--": QtCore.Qt.DashLine, ":": QtCore.Qt.DotLine}
             symbol = {"o": "o", "s": "s", "^": "t1"}
             self.curves = {}
@@ -171,9 +221,12 @@ def _build_window_class():
                 pen = pg.mkPen(colour, width=2, style=dash[ls])
                 self.curves[key] = self.hist_plot.plot([], [], pen=pen, symbol=symbol[marker], symbolBrush=colour,
                                                        symbolPen=colour, symbolSize=8, name=LINE_LABELS[key])
-            g.ci.layout.setRowStretchFactor(0, 3)
-            g.ci.layout.setRowStretchFactor(1, 1)
-            legend.setParentItem(self.hist_plot.vb)
+            g.ci.layout.setHorizontalSpacing(36)  # room between a colour-bar label and the next panel
+            g.ci.layout.setRowStretchFactor(0, 5)
+            g.ci.layout.setRowStretchFactor(1, 2)
+            self._shapes: dict[str, tuple] = {}
+            self._titles: dict[int, str] = {}
+            self._levels: dict[int, tuple] = {}
 
             controls = QtWidgets.QHBoxLayout()
             self.log_box = QtWidgets.QCheckBox("frame: log scale")
@@ -182,12 +235,14 @@ def _build_window_class():
             self.unwrap_box = QtWidgets.QCheckBox("phase: unwrapped")
             self.unwrap_box.setChecked(state.unwrap)
             self.unwrap_box.toggled.connect(self._set_unwrap)
-            legend_text = QtWidgets.QLabel(
-                f"<span style='color:rgb{SATURATED_RGB}'>&#9632;</span> saturated pixels   "
-                f"stream: {address}")
-            for w in (self.log_box, self.unwrap_box, legend_text):
+            sat_key = QtWidgets.QLabel(f"<span style='color:rgb{SATURATED_RGB}'>&#9632;</span> saturated pixels "
+                                       "(in the frame)")
+            stream_text = QtWidgets.QLabel(f"stream: {address}")
+            for w in (self.log_box, self.unwrap_box, sat_key):
                 controls.addWidget(w)
+                controls.addSpacing(24)
             controls.addStretch(1)
+            controls.addWidget(stream_text)
             vbox.addLayout(controls)
             font = QtGui.QFontDatabase.systemFont(QtGui.QFontDatabase.FixedFont)
             self.status_label = QtWidgets.QLabel("")
@@ -195,9 +250,13 @@ def _build_window_class():
             self.alert_label = QtWidgets.QLabel("")
             self.alert_label.setFont(font)
             self.alert_label.setStyleSheet("color: #A04000")
-            vbox.addWidget(self.status_label)
-            vbox.addWidget(self.alert_label)
+            for lab in (self.status_label, self.alert_label):
+                # long lines must not force the window wider than the screen
+                lab.setSizePolicy(QtWidgets.QSizePolicy.Ignored, QtWidgets.QSizePolicy.Preferred)
+                vbox.addWidget(lab)
             self.setCentralWidget(central)
+            self._set_log(state.log_scale)
+            self._set_unwrap(state.unwrap)
 
             self.timer = QtCore.QTimer(self)
             self.timer.timeout.connect(self.tick)
@@ -207,7 +266,7 @@ def _build_window_class():
         def _set_log(self, on: bool) -> None:
             self.state.log_scale = bool(on)
             self.state.dirty.add("frame")
-            self.frame_bar.axis.setLabel("counts, log10(DN)" if on else "counts (DN)")
+            self.frame_bar.getAxis("right").setLabel("counts, log10(DN)" if on else "counts (DN)")
 
         def _set_unwrap(self, on: bool) -> None:
             self.state.unwrap = bool(on)
@@ -215,6 +274,25 @@ def _build_window_class():
             name = UNWRAPPED_PHASE_CMAP if on else PHASE_CMAP
             self.phase_bar.setColorMap(self._colour_maps[name])
             self.phase_plot.setTitle("phase estimate (unwrapped)" if on else "phase estimate (wrapped)")
+            self.phase_bar.getAxis("right").setLabel(self._phase_labels[bool(on)])
+
+        def _title(self, plot, text: str) -> None:
+            """Set a panel title only when it changes (a new title re-lays out and repaints the axes)."""
+            if self._titles.get(id(plot)) != text:
+                self._titles[id(plot)] = text
+                plot.setTitle(text)
+
+        def _bar_levels(self, bar, levels) -> None:
+            key = (float(levels[0]), float(levels[1]))
+            if self._levels.get(id(bar)) != key:
+                self._levels[id(bar)] = key
+                bar.setLevels(key)
+
+        def _fit(self, name: str, plot, shape) -> None:
+            """Zoom the panel to the image when its shape changes (the user may zoom freely otherwise)."""
+            if self._shapes.get(name) != shape:
+                self._shapes[name] = shape
+                plot.getViewBox().setRange(xRange=(0, shape[1]), yRange=(0, shape[0]), padding=0.02)
 
         # --- loop -----------------------------------------------------------------------
         def tick(self) -> None:
@@ -234,25 +312,56 @@ def _build_window_class():
                 img, sat = s.frame_image()
                 levels = s.frame_levels()
                 self.frame_img.setImage(img, autoLevels=False, levels=levels)
-                self.frame_bar.setLevels(levels)
-                self.sat_img.setImage(sat.view(np.uint8), autoLevels=False, levels=(0, 1))
+                self._fit("frame", self.frame_plot, img.shape)
+                self._bar_levels(self.frame_bar, levels)
+                if sat.any():
+                    self.sat_img.setImage(sat.view(np.uint8), autoLevels=False, levels=(0, 1))
+                    self.sat_img.setVisible(True)
+                elif self.sat_img.isVisible():
+                    self.sat_img.setVisible(False)
                 fm = s.frame_meta
-                self.frame_plot.setTitle(f"camera frame: pass {int(fm.get('pass_index', -1)) + 1}, "
-                                         f"mask {int(fm.get('mask_index', -1)) + 1}")
+                where = [f"pass {int(fm['pass_index']) + 1}"] if int(fm.get("pass_index", -1)) >= 0 else []
+                if fm.get("mode") == "align":
+                    where = ["align mode"]
+                if int(fm.get("mask_index", -1)) >= 0:
+                    where.append(f"mask {int(fm['mask_index']) + 1}")
+                self._title(self.frame_plot, "camera frame" + (": " + ", ".join(where) if where else ""))
+                c = fm.get("centroid_rc")
+                if c and len(c) == 2 and all(np.isfinite(c)):
+                    for item in (self.centroid, self.centroid_inner):
+                        item.setData([c[1] + 0.5], [c[0] + 0.5])
+                else:
+                    for item in (self.centroid, self.centroid_inner):
+                        item.setData([], [])
             if "estimate" in dirty and s.estimate is not None:
                 amp = s.amplitude_image()
-                top = float(amp.max()) or 1.0
+                top = nice_ceiling(float(amp.max()))  # rounded up: the colour bar changes only now and then
                 self.amp_img.setImage(amp, autoLevels=False, levels=(0.0, top))
-                self.amp_bar.setLevels((0.0, top))
+                self._fit("amplitude", self.amp_plot, amp.shape)
+                self._bar_levels(self.amp_bar, (0.0, top))
                 phase, levels = s.phase_image()
                 self.phase_img.setImage(phase, autoLevels=False, levels=levels)
-                self.phase_bar.setLevels(levels)
+                self._fit("phase", self.phase_plot, phase.shape)
+                self._bar_levels(self.phase_bar, levels)
                 em = s.estimate_meta
-                self.amp_plot.setTitle(f"amplitude estimate (pass {int(em.get('pass_index', -1)) + 1}, "
-                                       f"{em.get('passes_used', '?')} frame sets)")
+                used = em.get("passes_used")
+                used = f", {used} frame set{'s' if used != 1 else ''}" if used is not None else ""
+                if "pass_index" in em:
+                    self._title(self.amp_plot, f"amplitude estimate (pass {int(em['pass_index']) + 1}{used})")
+                else:
+                    self._title(self.amp_plot,
+                                f"amplitude estimate (frame set {int(em.get('set_index', -1)) + 1}{used})")
             if "history" in dirty:
+                last = 1.0
                 for key, (x, y) in s.history_arrays().items():
                     self.curves[key].setData(x, y)
+                    if len(x):
+                        last = max(last, float(x.max()))
+                step = float(max(1, int(np.ceil(last / 10))))
+                self.hist_plot.getAxis("bottom").setTickSpacing(major=step, minor=step)
+                ys = np.concatenate([y for _, y in s.history_arrays().values()] + [np.zeros(0)])
+                if ys.size:
+                    self.hist_plot.getAxis("left").setTicks([log_ticks(float(ys.min()), float(ys.max())), []])
             self.status_label.setText(s.status_text(self.address))
             self.alert_label.setText(s.alert_text())
             self.renders += 1
@@ -305,7 +414,7 @@ def window_class():
     return _WINDOW_CLASS
 
 
-def run_view(address: str, *, log_scale: bool = True, unwrap: bool = False, size: tuple[int, int] = (1400, 900),
+def run_view(address: str, *, log_scale: bool = True, unwrap: bool = False, size: tuple[int, int] = (1500, 860),
              state_file: str | None = None, screenshot: str | None = None, exit_after_s: float | None = None) -> int:
     """Open the window on ``address`` and run until it is closed (or Ctrl-C, SIGTERM, ``exit_after_s``)."""
     require_view_extra()

@@ -59,6 +59,8 @@ class LiveViewState:
     _last_message_t: float | None = None
     _log_buf: np.ndarray | None = None
     _phase_cache: tuple | None = None
+    service: dict = field(default_factory=dict)  # last periodic status of `maskrun serve` (empty: none seen)
+    service_saturation_dn: float | None = None
 
     # --- input -----------------------------------------------------------------------
     def ingest(self, msg: StreamMessage, now: float | None = None) -> None:
@@ -77,10 +79,12 @@ class LiveViewState:
         elif h.topic == "estimate" and msg.array is not None:
             self.estimate, self.estimate_meta = msg.array, meta
             self._phase_cache = None
-            p = int(meta.get("pass_index", len(self.history)))
+            p = int(meta.get("pass_index", meta.get("set_index", len(self.history))))
             self.history[p] = PassRecord(p, _num(meta.get("residual")), _num(meta.get("error_estimate")),
                                          _num(meta.get("true_error")))
             self.dirty |= {"estimate", "history", "status"}
+        elif h.topic == "status" and meta.get("source") == "service":
+            self._ingest_service_status(meta)
         elif h.topic in ("status", "frameset"):
             if h.topic == "status":
                 if meta.get("state") == "preparing":  # a new run starts: forget the last run's curves
@@ -100,6 +104,23 @@ class LiveViewState:
                                     str(meta.get("message", ""))))
             self.dirty.add("status")
 
+    def _ingest_service_status(self, meta: dict) -> None:
+        """The periodic status of `maskrun serve`: state, run progress, safety, dose since the service started."""
+        self.service = meta
+        if meta.get("state") == "preparing" and self.status.get("state") != "preparing":
+            self.history.clear()
+            self.dirty.add("history")
+        self.status["state"] = meta.get("state")
+        run = meta.get("run") or {}
+        for key in ("passes", "pass_index"):
+            if key in run:
+                self.status[key] = run[key]
+        if meta.get("masks"):
+            self.status["masks"] = meta["masks"]
+        if meta.get("max_dn") and meta.get("saturation_level"):
+            self.service_saturation_dn = float(meta["max_dn"]) * float(meta["saturation_level"])
+        self.dirty.add("status")
+
     # --- output ----------------------------------------------------------------------
     def fps(self, now: float | None = None) -> float:
         """Frames per second received over the last FPS_WINDOW_S seconds (0 if fewer than 2)."""
@@ -116,7 +137,7 @@ class LiveViewState:
     @property
     def saturation_dn(self) -> float | None:
         m = self.frame_meta
-        v = m.get("saturation_dn", m.get("max_dn"))
+        v = m.get("saturation_dn", self.service_saturation_dn if self.service_saturation_dn else m.get("max_dn"))
         return float(v) if v is not None else None
 
     def frame_levels(self) -> tuple[float, float]:
@@ -169,7 +190,12 @@ class LiveViewState:
         """One line: state, pass, mask, frames/s, dose (photons), saturation, stream health."""
         now = time.monotonic() if now is None else now
         st, fm = self.status, self.frame_meta
-        parts = [f"state: {st.get('state', 'unknown (waiting for the daemon to report)')}"]
+        parts = [f"state: {st.get('state') or 'unknown (waiting for the daemon to report)'}"]
+        if fm.get("mode") == "align" and st.get("state") != "align":
+            parts[0] += " (align-mode frames)"
+        safety = self.service.get("safety") or {}
+        if "shutter_open" in safety:
+            parts.append("shutter OPEN" if safety["shutter_open"] else "shutter closed")
         p = fm.get("pass_index", st.get("pass_index"))
         passes = st.get("passes")
         if p is not None and int(p) >= 0:
@@ -177,21 +203,38 @@ class LiveViewState:
         if "mask_index" in fm:
             parts.append(f"mask {int(fm['mask_index']) + 1}" + (f"/{st['masks']}" if st.get("masks") else ""))
         parts.append(f"{self.fps(now):.1f} frames/s")
-        parts.append(f"dose {self.photons_total:.3g} photons")
+        figures = []  # second line: figures of the latest frame and the stream's health
+        dose = self.service.get("dose") or {}
+        if "photons_total" in dose:
+            energy = dose.get("energy_j")
+            parts.append(f"dose {float(dose['photons_total']):.3g} photons"
+                         + (f" ({float(energy):.3g} J)" if energy is not None else "") + " since the service started")
+        else:
+            parts.append(f"dose {self.photons_total:.3g} photons")
         if fm:
-            parts.append(f"saturated {100 * float(fm.get('saturated_fraction', 0.0)):.2f}% of pixels")
+            if "peak_dn" in fm:
+                figures.append(f"peak {int(fm['peak_dn'])} DN")
+            c = fm.get("centroid_rc")
+            if c and all(np.isfinite(c)):
+                figures.append(f"centroid row {c[0]:.1f}, col {c[1]:.1f} (pixel)")
+            figures.append(f"saturated {100 * float(fm.get('saturated_fraction', 0.0)):.2f}% of pixels")
             if fm.get("flags"):
-                parts.append("flags: " + ",".join(fm["flags"]))
+                figures.append("flags: " + ",".join(fm["flags"]))
         if self._last_message_t is None:
-            parts.append(f"no data yet from {address}" if address else "no data yet")
+            figures.append(f"no data yet from {address}" if address else "no data yet")
         elif now - self._last_message_t > STALE_AFTER_S:
-            parts.append(f"no data for {now - self._last_message_t:.0f} s")
+            figures.append(f"no data for {now - self._last_message_t:.0f} s")
         if self.dropped:
-            parts.append(f"{self.dropped} messages skipped (view behind; the run file has all)")
-        return "   |   ".join(parts)
+            figures.append(f"{self.dropped} messages skipped (view behind; the run file has all)")
+        return "   |   ".join(parts) + "\n" + "   |   ".join(figures)
 
     def alert_text(self) -> str:
-        return "   ".join(f"[{t}] {lvl}: {m}" for t, lvl, m in list(self.alerts)[-2:])
+        """The latest alert, and how many arrived in all (the run log has every one)."""
+        if not self.alerts:
+            return ""
+        t, lvl, m = self.alerts[-1]
+        n = self.received["alert"]
+        return f"[{t}] {lvl}: {m}" + (f"   ({n} alerts so far)" if n > 1 else "")
 
 
 def _num(v) -> float:

@@ -159,8 +159,12 @@ class WorkerLoop:
         masks = build_masks(hdr.masks, file_masks)
         engine = self._engine_for(hdr, masks)
         if hdr.data_passes is not None and hdr.options.mode == "accumulate" and hdr.options.method == "auto":
-            # accumulate mode's 'auto': hybrid from scratch, then error-reduction polish from the warm start
-            engine.method = "hybrid" if engine.estimate is None else "er"
+            # what accumulate mode's 'auto' does: the K-dependent default from scratch (hybrid, or RAAR for
+            # K <= 4), then error-reduction polish from the warm start when that default is hybrid
+            from maskrun.reconstruct.solvers import default_method
+
+            start = default_method(masks.shape[0])
+            engine.method = "er" if (start == "hybrid" and engine.estimate is not None) else start
         t0 = time.perf_counter()
         upd = engine.update(intensities)
         if hdr.data_passes is not None:  # the data are a mean over data_passes frame sets

@@ -195,7 +195,12 @@ class _Kit:
             start = float(cam.exposure_s)
             _expect(math.isfinite(start) and start > 0, f"exposure_s reads {start!r} after open")
             seen = []
-            for value in (start / 2, start):
+            other = start / 2
+            try:
+                cam.exposure_s = other
+            except DeviceMisconfigured:  # start is the shortest exposure: go longer instead
+                other = start * 2
+            for value in (other, start):
                 cam.exposure_s = value
                 back = float(cam.exposure_s)
                 _expect(abs(back - value) <= 0.05 * value, f"set exposure {value:g} s, read back {back:g} s")
@@ -347,7 +352,8 @@ def run_conformance(
     """Run the camera contract checks; return one CheckResult per check, in CHECK_NAMES order.
 
     camera: an installed driver name (built through the registry with ``settings`` and
-        ``context``), or a factory returning a new, unopened Camera on each call.
+        ``context``), or a factory returning a new, unopened Camera on each call (``settings``
+        and ``context`` are then unused).
     failing_settings: settings merged over ``settings`` that make ``open()`` fail (for the
         'close after failed open' check), when ``camera`` is a driver name.
     failing_factory: the same for a factory: returns a camera whose ``open()`` fails.
@@ -365,6 +371,8 @@ def run_conformance(
             failing_factory = _factory_for(camera, {**(settings or {}), **failing_settings}, context)
             failing_factory()
     else:
+        if failing_settings is not None:
+            raise ValueError("failing_settings needs a driver name; with a camera factory give failing_factory")
         factory = camera
     if only is not None:
         unknown = sorted(set(only) - set(CHECK_NAMES))

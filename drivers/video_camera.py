@@ -110,20 +110,40 @@ class VideoCaptureCamera(Camera):
         with self._lock:
             self._first = first
             self._shape = (int(first.shape[0]), int(first.shape[1]))
-            if self._roi is None or not self._fits(self._roi):
+            if self._roi is None:
                 self._roi = (0, 0, *self._shape)
+            elif not self._fits(self._roi):
+                roi = self._roi
+                self._roi = None
+                self.close()
+                raise DeviceMisconfigured(
+                    f"roi {roi} set before open does not fit the {self._shape[0]} x {self._shape[1]} frames the "
+                    "device delivers", device="camera", hint="set width/height, or set the roi after opening")
+        try:
             self._send_exposure()
+        except Exception:
+            self.close()
+            raise
 
     def close(self) -> None:
         with self._lock:
             cap, self._cap = self._cap, None
             self._first = None
-        if cap is not None:
-            self._pending = None  # a read still running on the released device ends on its own; never wait on it
+        if cap is None:
+            return
+        pending, self._pending = self._pending, None
+        if pending is not None and not pending.done():
+            # a read that timed out is still running: give it open_timeout_s to finish before releasing
             try:
-                cap.release()
-            except Exception:  # noqa: BLE001 - closing must not fail
+                pending.result(timeout=self.settings.open_timeout_s)
+            except Exception:  # noqa: BLE001 - its outcome no longer matters
                 pass
+        if pending is not None and not pending.done():
+            return  # the device is hung inside read(); releasing it under that read could crash the process
+        try:
+            cap.release()
+        except Exception:  # noqa: BLE001 - closing must not fail
+            pass
 
     # ------------------------------------------------------------------ reading
     def _to_2d(self, image: np.ndarray) -> np.ndarray:

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.fft as _sfft
 
-__all__ = ["FFTPlan", "chosen_backends", "time_one_fft", "set_max_workers"]
+__all__ = ["FFTPlan", "PropagatorPlan", "chosen_backends", "time_one_fft", "set_max_workers"]
 
 _BACKENDS = ("numpy", "scipy-1", "scipy-all")
 _CHOICE_CACHE: dict[tuple, str] = {}
@@ -152,3 +152,27 @@ def time_one_fft(shape: tuple[int, int], dtype, *, repeats: int = 20, batch: int
         times.append(time.perf_counter() - t0)
         buf *= 1e-3  # keep values bounded
     return float(np.median(times)) / batch
+
+
+class PropagatorPlan:
+    """A unitary propagator F^-1 diag(h) F (|h| = 1) with the FFTPlan interface.
+
+    ``forward`` applies the propagator, ``inverse`` its adjoint (= inverse),
+    both in place over the last two axes. Used for near-field measurements.
+    """
+
+    def __init__(self, plan: FFTPlan, transfer: np.ndarray):
+        self.plan = plan
+        self.backend = plan.backend
+        self.h = np.asarray(transfer).astype(plan.dtype)
+        self.h_conj = np.conj(self.h)
+
+    def forward(self, buf: np.ndarray) -> np.ndarray:
+        self.plan.forward(buf)
+        buf *= self.h
+        return self.plan.inverse(buf)
+
+    def inverse(self, buf: np.ndarray) -> np.ndarray:
+        self.plan.forward(buf)
+        buf *= self.h_conj
+        return self.plan.inverse(buf)

@@ -83,7 +83,7 @@ def check_masks(masks, *, warn_k1: bool = True) -> np.ndarray:
         if not np.issubdtype(m.dtype, np.number):
             raise ReconstructionInputError(f"masks must be numeric; got dtype {m.dtype}.")
     if not np.iscomplexobj(m):
-        m = m.astype(np.complex128 if m.dtype == np.float64 else np.complex64)
+        m = m.astype(np.complex64 if m.dtype == np.float32 else np.complex128)
     if not np.all(np.isfinite(m)):
         raise ReconstructionInputError("masks contain NaN or infinite entries: fix the mask file or generator.")
     weight = np.sum(np.abs(m) ** 2, axis=0)

@@ -56,13 +56,14 @@ def test_a_run_uses_the_profile_and_a_mismatch_is_refused(calibrated, tmp_path):
 
 
 def test_plan_reports_photons_and_refuses_an_impossible_dose(tmp_path):
+    # a 48x48 grid plans with the shot-noise rule (the Cramer-Rao path is covered in test_budget.py)
     cfg = tmp_path / "bench.toml"
-    cfg.write_text(small_bench_text(grid=32, sensor=40))
+    cfg.write_text(small_bench_text(grid=48, sensor=56))
     res = _run("plan", str(cfg), "--phase-precision", "0.05")
     assert res.returncode == 0, res.stderr
     assert "detected photons, total" in res.stdout and "exposure per frame" in res.stdout
     limited = tmp_path / "limited.toml"
-    limited.write_text(small_bench_text(grid=32, sensor=40).replace("[checks]", "[checks]\nmax_dose_photons = 1000.0"))
+    limited.write_text(small_bench_text(grid=48, sensor=56).replace("[checks]", "[checks]\nmax_dose_photons = 1000.0"))
     res = _run("plan", str(limited), "--phase-precision", "0.001")
     assert res.returncode != 0
     assert "cannot be reached under the dose limit" in res.stderr

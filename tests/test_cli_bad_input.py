@@ -79,5 +79,5 @@ def test_a_good_run_from_the_command_line(tmp_path):
     res = _run("run", str(p), "--acknowledge-safety", "--output-dir", str(tmp_path / "out"))
     assert res.returncode == 0, res.stderr + res.stdout
     files = sorted(x.suffix for x in (tmp_path / "out").iterdir())
-    assert files == [".h5", ".png"]
+    assert files == [".h5", ".log", ".png"]  # run file, plain-text run log, figure
     assert "Run summary" in res.stdout and "reconstruction error vs truth" in res.stdout

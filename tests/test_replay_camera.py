@@ -278,3 +278,11 @@ min_photons_per_frame = 1.0e3
         np.testing.assert_array_equal(new.darks(), old.darks())
         np.testing.assert_array_equal(new.frame_info()["frame_id"], old.frame_info()["frame_id"])
         assert new.estimate_count >= 1 and new.estimate_info()["residual"][-1] < 0.1
+
+
+def test_the_layout_the_driver_reads_matches_the_writer():
+    # drivers may not import the daemon, so the replay camera keeps its own copy of the format name
+    from maskrun.daemon.store import FORMAT_NAME
+    from maskrun.drivers.replay_camera import RUN_FILE_FORMAT
+
+    assert RUN_FILE_FORMAT == FORMAT_NAME

@@ -24,7 +24,7 @@ from maskrun.drivers.registry import build_driver
 
 PHOTON_RATE_PER_S = 2.0e5  # uniform light on every pixel when the camera runs alone
 SETTINGS = dict(
-    sensor_shape=[128, 128],
+    sensor_shape=[256, 256],
     quantum_efficiency=0.6,
     gain_dn_per_e=0.25,
     read_noise_e=4.0,
@@ -71,7 +71,7 @@ def test_photon_transfer_slope_equals_the_configured_gain(analog_gain, binning):
             mu_p.append(PHOTON_RATE_PER_S * exposure_s * binning**2)
     # EMVA 1288 R4.0 Linear sec. 2: sigma_y^2 - sigma_y.dark^2 = K (mu_y - mu_y.dark)
     slope, intercept = np.polyfit(xs, ys, 1)
-    assert slope == pytest.approx(k_expected, rel=0.03)
+    assert slope == pytest.approx(k_expected, rel=0.04)
     assert abs(intercept) < 0.02 * max(ys)
     # EMVA 1288 R4.0 Linear sec. 2: mu_y - mu_y.dark = K eta mu_p (responsivity R = K eta)
     responsivity = np.polyfit(mu_p, xs, 1)[0]

@@ -19,7 +19,7 @@ class PatternCamera(Camera):
 
     class Settings(DriverSettings):
         sensor_shape: tuple[int, int] = Field((64, 64), description="rows, cols")
-        bit_depth: int = Field(10, ge=8, le=16)
+        bit_depth: int = Field(10, ge=8, le=16, description="bits per pixel of the delivered frames")
         frame_time_s: float = Field(0.001, ge=0, description="readout time added to the exposure")
         device_index: int = Field(0, ge=0, description="which camera to open; this example has one, at index 0")
 
