@@ -195,6 +195,10 @@ def _status_lines(st: dict) -> str:
     if run:
         lines.append(f"run: {run['state']} {run['frames_done']}/{run['frames_total']} frames, "
                      f"pass {run['pass_index'] + 1}/{run['passes']}, file {run['output_path']}")
+        if isinstance(run.get("error_estimate"), (int, float)):
+            # shot-noise rule: relative error ~ phase precision in radians for a field of even amplitude
+            lines.append(f"expected precision now: {run['error_estimate']:.3g} rad (relative error "
+                         f"{run['error_estimate']:.2%}, from the photons collected)")
     if st.get("align"):
         a = st["align"]
         lines.append(f"align: {a.get('frames', 0)} frames, {a.get('fps', 0):.1f} fps, peak {a.get('peak_dn')} DN, "

@@ -24,7 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .store import ESTIMATE_INFO_DTYPE, EVENT_DTYPE, FRAME_INFO_DTYPE, StoreError
+from .store import ESTIMATE_INFO_DTYPE, EVENT_DTYPE, FRAME_INFO_DTYPE, RunStore, StoreError
 
 MB = 1024 * 1024
 # HDF5 metadata (object headers, chunk indexes) per chunked row, generously; measured ~100-200 bytes
@@ -61,6 +61,7 @@ def expected_run_bytes(*, grid_shape, mask_count: int, passes: int, dark_frames:
     size += mask_count * px * 8 + (px * 16 if truth else 0)
     size += int(math.ceil((frames + dark_frames) * events_per_frame + 20)) * EVENT_DTYPE.itemsize
     size += _FILE_OVERHEAD_BYTES
+    size += RunStore.SPACE_RESERVE_BYTES + 4 * px * frame_itemsize  # the emergency reserve beside the file
     return RunSizeEstimate(frames, dark_frames, est, int(size))
 
 

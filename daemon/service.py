@@ -306,6 +306,13 @@ class Service:
         plan = RunPlan(passes=req.passes or cfg.run.passes,
                        dark_frames=cfg.run.dark_frames if req.dark_frames is None else req.dark_frames,
                        exposure_s=req.exposure_s or self.exposure_s, output_path=out, interval_s=req.interval_s)
+        from .disk import DiskSpaceError
+        from .session import plan_run_disk
+
+        try:
+            plan_run_disk(self.bench, plan)  # refuse up front a run the disk cannot hold; nothing is written
+        except DiskSpaceError as exc:
+            raise Refused(str(exc)) from None
         if self.recon is not None and not self.recon.worker_alive():
             # the local reconstruction worker died since the last run: start a fresh one
             self.log("reconstruction worker had exited; starting a new one")

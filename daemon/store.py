@@ -195,6 +195,37 @@ class RunStore:
                 ds.resize(n, axis=0)
         self.frame_shape = tuple(self._frames.shape[1:])
         self.bytes_per_frame = int(np.prod(self.frame_shape)) * self._frames.dtype.itemsize
+        self._space_reserve = self._make_space_reserve()
+
+    # --- emergency disk space ---------------------------------------------------------
+    SPACE_RESERVE_BYTES = 256 * 1024
+
+    def _make_space_reserve(self) -> Path | None:
+        """Allocate a small file beside the run file (``RUN.h5.space``). When the disk fills up it is
+        deleted, so HDF5 can still flush its metadata, the last event can be logged and the file
+        closed cleanly (without it HDF5 keeps the half-flushed file open and crashes at exit)."""
+        reserve = self.path.with_name(self.path.name + ".space")
+        size = self.SPACE_RESERVE_BYTES + 4 * self.bytes_per_frame
+        try:
+            fd = os.open(reserve, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o644)
+            try:
+                try:
+                    os.posix_fallocate(fd, 0, size)
+                except (AttributeError, OSError):
+                    os.write(fd, b"\0" * size)
+            finally:
+                os.close(fd)
+        except OSError:
+            reserve.unlink(missing_ok=True)
+            return None
+        return reserve
+
+    def _release_space_reserve(self) -> bool:
+        reserve, self._space_reserve = self._space_reserve, None
+        if reserve is None:
+            return False
+        reserve.unlink(missing_ok=True)
+        return True
 
     # --- creation ------------------------------------------------------------
     @classmethod
@@ -270,12 +301,17 @@ class RunStore:
             f = h5py.File(path, "a", libver="latest")
         except OSError as exc:
             raise StoreError(f"{path}: cannot open the run file for appending ({exc})") from None
-        if f.attrs.get("format") != FORMAT_NAME:
+        if f.attrs.get("format") != FORMAT_NAME or "entry" not in f:
             f.close()
             raise StoreError(f"{path}: not a maskrun run file")
         try:
-            store = cls(path, f, text_log)
+            # SWMR mode first, while no dataset of the file is open (starting it with open dataset
+            # handles crashed HDF5 now and then); the row trimming in __init__ is a resize, allowed in SWMR
+            import gc
+
+            gc.collect()
             f.swmr_mode = True
+            store = cls(path, f, text_log)
         except Exception:
             f.close()
             raise
@@ -302,6 +338,8 @@ class RunStore:
 
     def _write_error(self, exc: BaseException) -> StoreWriteError:
         full = _is_disk_full(exc)
+        if full:
+            self._release_space_reserve()  # room for HDF5 to flush its metadata and close cleanly
         why = "the disk is full" if full else f"{exc}"
         return StoreWriteError(f"{self.path}: writing the run file failed: {why}. Everything flushed before "
                                "is kept; free some space, then continue with 'maskrun resume'", disk_full=full)
@@ -391,6 +429,7 @@ class RunStore:
             gc.collect()
         finally:
             sys.unraisablehook = previous_hook
+        self._release_space_reserve()
         if err is not None:
             raise err
 

@@ -244,7 +244,7 @@ def render(model: WatchModel, image_cols: int = 40, image_rows: int = 32):
                  ("photons / frame (last)", _fmt(run.get("photons_last"), ".3g")),
                  ("photons this run", _fmt(run.get("photons_total"), ".3g")),
                  ("residual", _fmt(run.get("residual"), ".3g")),
-                 ("error estimate", _fmt(run.get("error_estimate"), ".2%")),
+                 ("expected precision now", _fmt(run.get("error_estimate"), ".2%")),
                  ("error vs truth", _fmt(run.get("true_error"), ".2%")),
                  ("run file", str(run.get("output_path", "")))]
     elif align:

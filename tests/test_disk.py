@@ -14,6 +14,7 @@ from rich.console import Console
 from maskrun.daemon.config import parse_config
 from maskrun.daemon.disk import DiskSpaceError, expected_run_bytes, free_bytes, series_passes
 from maskrun.daemon.foreground import RunRequest, run_foreground
+from maskrun.daemon.recovery import needs_repair
 from maskrun.daemon.runfile import RunFile
 from maskrun.daemon.sequencer import State
 from maskrun.daemon.store import RunStore, StoreWriteError, frame_info_record
@@ -74,7 +75,7 @@ def test_run_is_refused_when_the_real_free_space_is_below_the_reserve(tmp_path):
 def test_time_series_plan_and_warning(tiny_disk):
     assert series_passes(600, 12 * 3600) == 72 and series_passes(600, 601) == 2
     # a run that fits but uses more than half of what may be used: warned, and the warning is logged
-    text = bench_text(passes=4).replace("[run]\n", "[run]\nmin_free_disk_mb = 1.75\n", 1)
+    text = bench_text(passes=4).replace("[run]\n", "[run]\nmin_free_disk_mb = 1.3\n", 1)
     cfg = parse_config(text, str(tiny_disk / "b.toml"))
     console = Console(file=io.StringIO(), width=300)
     summary = run_foreground(cfg, RunRequest(acknowledge_unattended=True, output_dir=str(tiny_disk)), console)
@@ -132,6 +133,10 @@ def test_disk_full_during_a_write_stops_safely_and_keeps_the_flushed_frames(tiny
         assert info["mask_index"].tolist() == [0, 1, 2, 3, 0, 1]
         assert rf.frame(5).max() > 0
     assert "disk_full" in (tiny_disk / "run.log").read_text()
+    # the emergency reserve beside the file was given up, so HDF5 could still close the file cleanly
+    assert not needs_repair(summary.output_path) and not (tiny_disk / "run.h5.space").exists()
+    with RunFile(summary.output_path) as rf:
+        assert "disk is full" in rf.last_end()["message"]
 
 
 def test_store_level_enospc_is_a_typed_error_and_earlier_frames_survive(tiny_disk):

@@ -378,3 +378,36 @@ def test_foreground_signals_sigterm_stops_and_sigusr1_resumes(tmp_path):
         kinds = [e["kind"] for e in rf.events()]
         assert "paused" in kinds and "resumed" in kinds and kinds[-1] == "run_end"
     assert signal.getsignal(signal.SIGTERM) is not None  # handlers restored
+
+
+def test_sigint_to_a_foreground_run_process_stops_it_cleanly(tmp_path):
+    """`maskrun run` in its own process: SIGINT -> frame finished, shutter closed, file closed, and it says so."""
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    import h5py
+
+    cfg_path = tmp_path / "b.toml"
+    cfg_path.write_text(bench_text(passes=500))
+    out = tmp_path / "out"
+    proc = subprocess.Popen([str(Path(sys.executable).parent / "maskrun"), "run", str(cfg_path), "--acknowledge-safety",
+                             "--output-dir", str(out), "--no-figure"], stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
+                            text=True, env={**os.environ, "COLUMNS": "250"})
+    deadline = time.monotonic() + 30
+    while time.monotonic() < deadline:
+        logs = list(out.glob("*.log")) if out.exists() else []
+        if logs and " shutter " in logs[0].read_text():
+            break
+        time.sleep(0.02)
+    time.sleep(0.3)
+    proc.send_signal(signal.SIGINT)
+    text, _ = proc.communicate(timeout=30)
+    assert proc.returncode == 1, text
+    assert "interrupted by SIGINT" in text and "Shutter closed" in text and "maskrun resume" in text
+    run = next(out.glob("*.h5"))
+    with h5py.File(run, "r+"):  # closed cleanly: no repair needed
+        pass
+    with RunFile(run) as rf:
+        assert rf.last_end()["message"].startswith("run stopped: interrupted by SIGINT")
+        assert rf.frame_count >= 1

@@ -193,3 +193,18 @@ def test_client_verbs_on_the_command_line(daemon):
     out = maskrun("start", "--passes", "1", "--wait", "--name", "cli")
     assert out.returncode == 0, out.stderr
     assert "Run finished" in out.stdout
+
+
+def test_start_is_refused_up_front_when_the_disk_cannot_hold_the_run(tmp_path):
+    # a reserve larger than any disk: the run cannot fit, so the daemon refuses before writing anything
+    text = service_config_text(passes=2, exposure_s=0.002).replace("[run]\n", "[run]\nmin_free_disk_mb = 1.0e12\n", 1)
+    d = Daemon(tmp_path / "svc-disk", text).wait_ready()
+    try:
+        with ServiceClient(d.control, timeout_s=10) as c:
+            c.acknowledge("test operator")
+            err = refused(c.start, output_dir=str(tmp_path / "runs"))
+            assert "free" in err.error and err.state == "idle"
+            assert c.status()["state"] == "idle"
+        assert not (tmp_path / "runs").exists() or not any((tmp_path / "runs").iterdir())
+    finally:
+        assert d.stop() == 0, d.output()

@@ -1,6 +1,6 @@
 """Soak: a compressed overnight run with random faults (not in the default suite; `make soak`).
 
-Hundreds of frame sets on the simulated bench with `real_time = false`, live reconstruction on,
+2000 frame sets (8000 frames) on the simulated bench with `real_time = false`, live reconstruction on,
 and faults drawn at random (seeded): camera timeouts, dropped, stale and corrupted frames and
 disconnects, modulator replies missing or garbled, unplugged serial lines, and the interlock
 opening now and then (an operator thread closes it and resumes). Reports frames lost (must be
@@ -24,7 +24,7 @@ from test_faults import bench_text, run_bench
 
 pytestmark = pytest.mark.soak
 
-PASSES = int(os.environ.get("MASKRUN_SOAK_PASSES", "1000"))
+PASSES = int(os.environ.get("MASKRUN_SOAK_PASSES", "2000"))
 MASKS = 4
 WATCHDOG_S = 540.0
 
@@ -106,15 +106,21 @@ def test_compressed_overnight_run_with_random_faults(tmp_path, capsys):
         dark_in_sets = int(np.count_nonzero(info["photons"] < 1e4))
         n_refused = rf.refused_count
         n_events = len(rf.events())
+    # HDF5 keeps bounded internal caches/free lists that fill during the first few thousand rows
+    # (a bare RunStore grows ~7 MB over its first 4000 frames, then stays flat): "flat" is judged
+    # on the second half of the run; the growth after the first 20 % is reported too.
     steady = [m for f, m in memory if f >= 0.2 * PASSES * MASKS]
+    late = [m for f, m in memory if f >= 0.5 * PASSES * MASKS]
     growth = (np.median(steady[-5:]) - np.median(steady[:5])) if len(steady) >= 10 else float("nan")
+    late_growth = (np.median(late[-5:]) - np.median(late[:5])) if len(late) >= 10 else float("nan")
     report = {
         "frame_sets": PASSES, "frames_planned": PASSES * MASKS, "frames_lost": lost, "state": summary.state.value,
         "wall_s": round(wall, 1), "faults": summary.faults, "faults_total": int(sum(summary.faults.values())),
         "recovered": summary.recovered, "pauses": summary.pauses, "interlock_openings": len(interlock_events),
         "refused_frames_kept": n_refused, "retakes_stale_or_gap": summary.rejected, "events": n_events,
         "estimates": summary.estimates, "rss_mb_start": round(steady[0], 1) if steady else None,
-        "rss_mb_end": round(steady[-1], 1) if steady else None, "rss_growth_mb": round(float(growth), 2),
+        "rss_mb_end": round(steady[-1], 1) if steady else None, "rss_growth_mb_after_20pct": round(float(growth), 2),
+        "rss_growth_mb_second_half": round(float(late_growth), 2),
         "shutter_opened_while_interlock_open": len(watch.violations),
         "file_mb": round(os.path.getsize(summary.output_path) / 1e6, 2),
     }
@@ -124,4 +130,4 @@ def test_compressed_overnight_run_with_random_faults(tmp_path, capsys):
     assert summary.state == State.finished, summary.message
     assert lost == 0 and dark_in_sets == 0
     assert sum(summary.faults.values()) >= PASSES // 15 and summary.recovered >= PASSES // 30
-    assert growth < 10.0, f"memory grew by {growth:.1f} MB over the run"
+    assert late_growth < 3.0, f"memory grew by {late_growth:.1f} MB over the second half of the run"
