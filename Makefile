@@ -1,8 +1,9 @@
-# Set-up contract: `make demo` and `make test` from a fresh clone.
+# Set-up contract: `make demo` and `make test` from a fresh clone (only Python 3.11+ and make needed).
 PYTHON ?= python3
 VENV := .venv
 BIN := $(VENV)/bin
-STAMP := $(VENV)/.installed
+CORE := $(VENV)/.installed-core
+TEST := $(VENV)/.installed-test
 
 .PHONY: demo test venv soak bench clean
 
@@ -10,23 +11,29 @@ $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
 
-$(STAMP): pyproject.toml $(BIN)/python tests/plugin_example/pyproject.toml
+# the demo needs only the core dependencies
+$(CORE): pyproject.toml $(BIN)/python
+	$(BIN)/python -m pip install --quiet -e .
+	touch $(CORE)
+
+# the tests add the test extra (view, video, cluster, scikit-image) and the example camera plugin
+$(TEST): $(CORE) tests/plugin_example/pyproject.toml
 	$(BIN)/python -m pip install --quiet -e '.[test]'
 	$(BIN)/python -m pip install --quiet -e tests/plugin_example
-	touch $(STAMP)
+	touch $(TEST)
 
-venv: $(STAMP)
+venv: $(TEST)
 
-demo: $(STAMP)
-	$(BIN)/maskrun demo
+demo: $(CORE)
+	$(BIN)/maskrun demo --acknowledge-safety
 
-test: $(STAMP)
+test: $(TEST)
 	$(BIN)/python -P -m pytest -q
 
-soak: $(STAMP)
+soak: $(TEST)
 	$(BIN)/python -P -m pytest -q -m soak
 
-bench: $(STAMP)
+bench: $(TEST)
 	$(BIN)/python bench/recon_bench.py
 
 clean:
