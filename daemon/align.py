@@ -328,7 +328,7 @@ class AlignLoop:
                              downsample_preview(pixels))
             self.pub.publish("check", {**meta, "fps": fig.fps})
             if cycling:
-                set_buffer[mask] = np.fft.ifftshift(resp.electrons(pixels, self.dark_dn))
+                set_buffer[mask] = np.fft.ifftshift(resp.electrons(pixels, self.dark_dn, getattr(bench, "flat_field", None)))
                 k += 1
                 if k == k_total:
                     k = 0

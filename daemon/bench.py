@@ -38,6 +38,7 @@ class Bench:
     truth: np.ndarray | None = None  # sqrt(incident photons / s), simulated benches only
     firmware: list = field(default_factory=list)
     profile: Any = None  # CameraProfile from 'maskrun calibrate', when [response] profile names one
+    flat_field: np.ndarray | None = None  # per-pixel response (float32, mean 1, frame shape) from the profile
     _opened: list = field(default_factory=list)
 
     @property
@@ -65,6 +66,11 @@ class Bench:
             # a profile measured on another camera or mode would turn counts into wrong photon numbers
             check_profile_matches(self.profile, self.camera, path=self.config.response.profile,
                                   driver_name=self.config.camera.driver)
+        if self.flat_field is not None and tuple(self.flat_field.shape) != tuple(self.camera.frame_shape):
+            from .camera_profile import ProfileMismatch
+
+            raise ProfileMismatch([f"flat field shape {tuple(self.flat_field.shape)}, frames "
+                                   f"{tuple(self.camera.frame_shape)} on the camera"], self.config.response.profile)
         self.modulator.load(self.masks)
 
     def close(self) -> None:
@@ -143,24 +149,27 @@ def build_bench(cfg: BenchConfig) -> Bench:
         for fw in firmware:
             fw.stop()
         raise
-    profile = _load_profile(cfg)
+    profile, flat = _load_profile(cfg)
     if profile is not None:
         qe = profile.quantum_efficiency or cfg.response.quantum_efficiency
         response = Response(profile.gain_dn_per_e, profile.offset_dn, qe)
     else:
         response = Response(cfg.response.gain_dn_per_e, cfg.response.offset_dn, cfg.response.quantum_efficiency)
-    return Bench(cfg, masks, camera, modulator, safety, response, context, optics, truth, firmware, profile=profile)
+    return Bench(cfg, masks, camera, modulator, safety, response, context, optics, truth, firmware, profile=profile,
+                 flat_field=flat)
 
 
 def _load_profile(cfg: BenchConfig):
-    """The camera profile named in [response] profile (relative paths from the config's folder), or None."""
+    """(profile, flat field) named in [response] profile (relative paths from the config's folder);
+    (None, None) without a profile, flat None when the profile names no flat-field file."""
     if not cfg.response.profile:
-        return None
-    from .camera_profile import CameraProfile, ProfileError
+        return None, None
+    from .camera_profile import CameraProfile, ProfileError, load_flat_field
 
     path = cfg.config_dir / cfg.response.profile
     try:
-        return CameraProfile.load(path)
+        profile = CameraProfile.load(path)
+        return profile, load_flat_field(profile, path)
     except (ProfileError, OSError) as exc:
         raise ConfigError(cfg.source_path, [("response.profile", str(exc))]) from None
 

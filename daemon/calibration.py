@@ -9,11 +9,18 @@ with the shutter closed).
 
 The light must be steady and spatially uniform over the frame (no sample and no
 mask in the beam; a diffuser in front of the camera), as EMVA 1288 requires.
+
+``measure_flat_field`` then takes flat frames in the same light (about half of
+saturation, ``flat_exposure_s`` picks the exposure from the photon transfer
+result) and dark frames at the same exposure, and returns the per-pixel
+response map normalised to mean 1 (the photo-response non-uniformity, PRNU, of
+EMVA 1288). The pipeline divides dark-subtracted frames by it.
 """
 
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 from typing import Callable, Sequence
 
 import numpy as np
@@ -28,7 +35,8 @@ from .photon_transfer import (
     step_statistics,
 )
 
-__all__ = ["ProgressCallback", "measure_photon_transfer", "default_exposure_series", "CalibrationAborted"]
+__all__ = ["ProgressCallback", "measure_photon_transfer", "default_exposure_series", "CalibrationAborted",
+           "FlatField", "FlatFieldError", "flat_exposure_s", "measure_flat_field"]
 
 #: progress(done_frames, total_frames, what) is called after every frame.
 ProgressCallback = Callable[[int, int, str], None]
@@ -227,3 +235,126 @@ def _probe_saturation_exposure(camera, safety_box, exposure_s, tries, margin_s) 
             camera.exposure_s = saved
         except Exception:
             pass
+
+
+# ----------------------------------------------------------------------------- flat field
+class FlatFieldError(ValueError):
+    """The flat frames cannot give a flat field (clipped, no light); the message says what to change."""
+
+
+@dataclass
+class FlatField:
+    """Per-pixel response map from flat frames.
+
+    flat: (rows, cols) float32, mean 1: (mean flat frame - mean dark frame) / its mean.
+    exposure_s: exposure of the flat and dark frames [s].
+    mean_signal_dn: mean dark-subtracted signal of the averaged flat frame [DN].
+    prnu_fraction: spatial spread of ``flat`` (std / mean), which includes the temporal noise
+        left after averaging (about sqrt(mean_signal_e * frames)^-1).
+    frames, dark_frames: frames averaged.
+    """
+
+    flat: np.ndarray
+    exposure_s: float
+    mean_signal_dn: float
+    prnu_fraction: float
+    frames: int
+    dark_frames: int
+
+
+def flat_exposure_s(result: PhotonTransferResult, fraction_of_saturation: float = 0.5) -> float:
+    """Exposure [s] at which the mean signal is ``fraction_of_saturation`` of the saturation signal,
+    from a straight line through the photon transfer steps used for the linearity fit."""
+    if not 0.0 < fraction_of_saturation < 1.0:
+        raise ValueError(f"fraction_of_saturation must be in (0, 1), got {fraction_of_saturation}")
+    use = np.asarray(result.in_linearity_fit, dtype=bool)
+    if np.count_nonzero(use) < 2:
+        use = np.asarray(result.clipped_fraction) == 0
+    t = np.asarray(result.exposure_s, dtype=float)[use]
+    signal = np.asarray(result.signal_dn, dtype=float)[use]
+    if t.size < 2 or np.ptp(t) <= 0:
+        raise FlatFieldError("too few unclipped photon transfer steps to choose the flat-frame exposure; "
+                             "calibrate with more steps")
+    slope, intercept = np.polyfit(t, signal, 1)
+    if not slope > 0:
+        raise FlatFieldError("the signal does not grow with the exposure: check the light before taking flat frames")
+    target = fraction_of_saturation * float(result.saturation_signal_dn)
+    return float(max((target - intercept) / slope, float(t.min())))
+
+
+def measure_flat_field(
+    camera: Camera,
+    safety_box: SafetyBox,
+    exposure_s: float,
+    *,
+    frames: int = 16,
+    dark_frames: int = 16,
+    progress: ProgressCallback | None = None,
+    discard_frames: int = 0,
+    timeout_margin_s: float = 5.0,
+    max_clipped_fraction: float = 0.001,
+) -> FlatField:
+    """Average ``frames`` flat frames (shutter open, uniform light) and ``dark_frames`` dark frames
+    (shutter closed) at ``exposure_s`` and return the dark-subtracted mean normalised to mean 1.
+
+    Sums are kept in float64 (no frame list in memory). The shutter is closed in a ``finally``.
+    Raises CalibrationAborted (device failure) or FlatFieldError when more than
+    ``max_clipped_fraction`` of the flat pixels clip or some pixel sees no light.
+    """
+    if int(frames) != frames or frames < 1 or int(dark_frames) != dark_frames or dark_frames < 1:
+        raise ValueError(f"frames and dark_frames must be integers >= 1, got {frames} and {dark_frames}")
+    exposure_s = float(exposure_s)
+    if not (math.isfinite(exposure_s) and exposure_s > 0):
+        raise ValueError(f"exposure_s must be a finite time > 0 seconds, got {exposure_s}")
+    frames, dark_frames = int(frames), int(dark_frames)
+    total = frames + dark_frames
+    max_dn = int(camera.max_dn)
+    saved_exposure = camera.exposure_s
+    timeout = 2 * exposure_s + timeout_margin_s
+    dark_sum = bright_sum = None
+    clipped = 0
+    try:
+        safety_box.close_shutter()
+        if safety_box.shutter_is_open():
+            raise DeviceFault("the shutter reports open after a close command", device="safety",
+                              hint="check the shutter; no flat frames were taken")
+        camera.exposure_s = exposure_s
+        for i in range(dark_frames):
+            (px,) = _take_frames(camera, exposure_s, 1, discard_frames if i == 0 else 0, timeout)
+            dark_sum = px.astype(np.float64) if dark_sum is None else dark_sum + px
+            if progress is not None:
+                progress(i + 1, total, f"flat-field dark {i + 1}/{dark_frames}")
+        safety_box.open_shutter()
+        for i in range(frames):
+            (px,) = _take_frames(camera, exposure_s, 1, discard_frames if i == 0 else 0, timeout)
+            clipped += int(np.count_nonzero(px >= max_dn))
+            bright_sum = px.astype(np.float64) if bright_sum is None else bright_sum + px
+            if progress is not None:
+                progress(dark_frames + i + 1, total, f"flat frame {i + 1}/{frames}")
+        if not safety_box.shutter_is_open():
+            raise DeviceFault("the shutter closed during the flat frames (interlock opened?)", device="safety",
+                              hint="close the interlock chain and calibrate again")
+    except Exception as exc:
+        raise CalibrationAborted(f"flat frames stopped: {exc}", []) from exc
+    finally:
+        safety_box.close_shutter()
+        try:
+            camera.exposure_s = saved_exposure
+        except Exception:
+            pass
+    if clipped > max_clipped_fraction * bright_sum.size * frames:
+        raise FlatFieldError(
+            f"{clipped} clipped pixels in the flat frames at {exposure_s:.4g} s: the flat field needs unclipped "
+            "frames; lower the light or the exposure"
+        )
+    signal = bright_sum / frames - dark_sum / dark_frames
+    mean = float(signal.mean())
+    if not mean > 0 or float(signal.min()) <= 0:
+        raise FlatFieldError(
+            f"some pixels see no light in the flat frames (mean signal {mean:.3g} DN, lowest "
+            f"{float(signal.min()):.3g} DN at {exposure_s:.4g} s): make the light uniform over the frame "
+            "(diffuser in, sample and mask out) or lengthen the exposure"
+        )
+    flat = (signal / mean).astype(np.float32)
+    return FlatField(flat=flat, exposure_s=exposure_s, mean_signal_dn=mean, prnu_fraction=float(flat.std()),
+                     frames=frames, dark_frames=dark_frames)

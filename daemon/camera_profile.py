@@ -6,6 +6,11 @@ measured on another camera or in another mode (``check_profile_matches``).
 
 File format: one JSON object with the fields of ``CameraProfile`` plus
 ``schema_version``. Written atomically (temporary file, then rename).
+
+Flat field: ``maskrun calibrate`` also writes the per-pixel response map (float32,
+mean 1, the profile's frame shape) beside the profile as ``<profile stem>.flat.npy``
+and names it in ``flat_field_file`` (relative to the profile's folder). Profiles
+without it (older ones, or ``--flat-frames 0``) mean a uniform response.
 """
 
 from __future__ import annotations
@@ -28,6 +33,9 @@ __all__ = [
     "camera_serial",
     "camera_driver_name",
     "check_profile_matches",
+    "flat_field_path_for",
+    "save_flat_field",
+    "load_flat_field",
 ]
 
 PROFILE_SCHEMA_VERSION = 1
@@ -66,6 +74,8 @@ class CameraProfile(BaseModel):
     camera_gain_setting: the camera's own analog gain setting during calibration (K depends on it).
     binning: binning during calibration.
     created: UTC time of the calibration.
+    flat_field_file: name of the flat-field map (.npy, float32, mean 1, frame_shape), relative to the
+        profile's folder; None when no flat frames were taken.
     """
 
     model_config = ConfigDict(extra="forbid", frozen=True)
@@ -87,6 +97,7 @@ class CameraProfile(BaseModel):
     camera_gain_setting: float = 1.0
     binning: int = Field(default=1, ge=1)
     created: _dt.datetime = Field(default_factory=lambda: _dt.datetime.now(_dt.timezone.utc))
+    flat_field_file: str | None = None
 
     @field_validator("frame_shape")
     @classmethod
@@ -118,6 +129,7 @@ class CameraProfile(BaseModel):
         *,
         driver_name: str | None = None,
         wavelength_m: float | None = None,
+        flat_field_file: str | None = None,
     ) -> "CameraProfile":
         """Build a profile from a PhotonTransferResult measured on ``camera`` (a maskrun Camera)."""
         qe = result.quantum_efficiency
@@ -143,6 +155,7 @@ class CameraProfile(BaseModel):
             camera_serial=camera_serial(camera),
             camera_gain_setting=float(camera.gain),
             binning=int(camera.binning),
+            flat_field_file=flat_field_file,
         )
 
     # --------------------------------------------------------------- file I/O
@@ -184,6 +197,61 @@ class CameraProfile(BaseModel):
                 f"{'.'.join(str(p) for p in err['loc']) or '(top)'}: {err['msg']}" for err in exc.errors()
             ]
             raise ProfileError(f"camera profile {path} is invalid: " + "; ".join(lines)) from None
+
+
+def flat_field_path_for(profile_path: str | os.PathLike) -> Path:
+    """Where the flat-field map of a profile goes: ``<folder>/<profile stem>.flat.npy``."""
+    profile_path = Path(profile_path)
+    return profile_path.with_name(profile_path.stem + ".flat.npy")
+
+
+def save_flat_field(path: str | os.PathLike, flat: Any) -> Path:
+    """Write a flat-field map (saved as float32 .npy) atomically; returns the path."""
+    import numpy as np
+
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=path.name + ".", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            np.save(fh, np.asarray(flat, dtype=np.float32))
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return path
+
+
+def load_flat_field(profile: CameraProfile, profile_path: str | os.PathLike):
+    """The profile's flat-field map (float32, mean 1) or None when the profile names none.
+
+    Raises ProfileError when the file is missing, unreadable, not 2-D, of another shape than the
+    profile's frame shape, or holds values that are not finite and > 0.
+    """
+    import numpy as np
+
+    if not profile.flat_field_file:
+        return None
+    path = Path(profile_path).parent / profile.flat_field_file
+    fix = "recalibrate with 'maskrun calibrate' or remove flat_field_file from the profile"
+    try:
+        flat = np.load(path, allow_pickle=False)
+    except FileNotFoundError:
+        raise ProfileError(f"flat-field file {path} named by camera profile {profile_path} does not exist; {fix}") from None
+    except (OSError, ValueError) as exc:
+        raise ProfileError(f"flat-field file {path} is not a readable .npy array ({exc}); {fix}") from None
+    shape = tuple(int(s) for s in profile.frame_shape)
+    if flat.ndim != 2 or tuple(flat.shape) != shape:
+        raise ProfileError(
+            f"flat-field file {path} has shape {tuple(flat.shape)} but the frames are {shape} "
+            f"(profile frame_shape); {fix}"
+        )
+    flat = flat.astype(np.float32)
+    if not (np.all(np.isfinite(flat)) and flat.min() > 0):
+        raise ProfileError(f"flat-field file {path} holds values that are not finite and > 0; {fix}")
+    return flat
 
 
 def camera_serial(camera: Any) -> str | None:

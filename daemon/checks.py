@@ -3,7 +3,10 @@
 Pure functions on arrays; no devices, no I/O. Counts are converted to photons
 with the camera response (gain in DN per electron, quantum efficiency) after
 subtracting the dark level (the mean dark frame, or the offset before darks
-exist).
+exist) and dividing by the flat field (per-pixel response, mean 1, from
+'maskrun calibrate') when the bench has one:
+
+    electrons = (pixels - dark) / flat / gain_dn_per_e,   photons = electrons / QE
 """
 
 from __future__ import annotations
@@ -23,9 +26,15 @@ class Response:
     offset_dn: float
     quantum_efficiency: float
 
-    def electrons(self, pixels: np.ndarray, dark_dn: np.ndarray | float) -> np.ndarray:
-        """Detected photo-electrons per pixel (float32). Negative values (noise around the dark level) are kept."""
+    def electrons(self, pixels: np.ndarray, dark_dn: np.ndarray | float, flat: np.ndarray | None = None) -> np.ndarray:
+        """Detected photo-electrons per pixel (float32): (pixels - dark_dn) / flat / gain_dn_per_e.
+
+        flat: per-pixel response (float32, mean 1, the frame's shape) or None for a uniform response.
+        Negative values (noise around the dark level) are kept.
+        """
         out = np.subtract(pixels, dark_dn, dtype=np.float32)
+        if flat is not None:
+            out /= flat
         out *= np.float32(1.0 / self.gain_dn_per_e)
         return out
 
@@ -53,13 +62,21 @@ class FrameCheck:
         return not self.problems
 
 
-def check_frame(pixels: np.ndarray, dark_dn: np.ndarray | float, response: Response, limits: CheckLimits) -> FrameCheck:
-    """Check one frame. Vectorised; a 1024x1024 frame costs a few milliseconds."""
+def check_frame(pixels: np.ndarray, dark_dn: np.ndarray | float, response: Response, limits: CheckLimits,
+                flat: np.ndarray | None = None) -> FrameCheck:
+    """Check one frame. Vectorised; a 1024x1024 frame costs a few milliseconds.
+
+    flat: per-pixel response (mean 1) or None; the photon count is then sum((pixels - dark) / flat) / gain / QE.
+    """
     threshold = limits.saturation_level * limits.max_dn
     peak = int(pixels.max())
     saturated = float(np.count_nonzero(pixels >= threshold)) / pixels.size
-    dark_total = np.sum(dark_dn, dtype=np.float64) if np.ndim(dark_dn) else float(dark_dn) * pixels.size
-    electrons = (float(np.sum(pixels, dtype=np.float64)) - dark_total) / response.gain_dn_per_e
+    if flat is not None:
+        signal_dn = float(np.sum(np.subtract(pixels, dark_dn, dtype=np.float64) / flat))
+    else:
+        dark_total = np.sum(dark_dn, dtype=np.float64) if np.ndim(dark_dn) else float(dark_dn) * pixels.size
+        signal_dn = float(np.sum(pixels, dtype=np.float64)) - dark_total
+    electrons = signal_dn / response.gain_dn_per_e
     photons = electrons / response.quantum_efficiency
     flags = 0
     problems = []

@@ -1,4 +1,5 @@
-"""Verbs `calibrate CONFIG` (EMVA 1288 photon transfer -> camera profile) and
+"""Verbs `calibrate CONFIG` (EMVA 1288 photon transfer -> camera profile, then flat
+frames -> flat-field map beside the profile) and
 `plan CONFIG` (photon budget for a wanted precision)."""
 
 from __future__ import annotations
@@ -23,6 +24,9 @@ def register(sub) -> None:
     p.add_argument("--steps", type=int, default=50, help="exposure steps from dark to beyond saturation (default 50)")
     p.add_argument("--longest-exposure-s", type=float, help="longest exposure; default: probed with the shutter open")
     p.add_argument("--plot", help="PNG of the photon transfer and linearity plots (default: beside the profile)")
+    p.add_argument("--flat-frames", type=int, default=16,
+                   help="flat frames (and as many dark frames) averaged at about half of saturation for the "
+                   "flat-field map <profile>.flat.npy (default 16; 0: no flat field)")
     p.add_argument(UNATTENDED_OPTION, dest="ack", action="store_true", help="acknowledge the laser-safety notice")
     p.add_argument("--uniform-light-ready", action="store_true",
                    help="real benches: confirm the camera sees uniform light (sample and mask removed, diffuser in)")
@@ -77,14 +81,17 @@ def _uniform_light(bench, console: Console, ready: bool) -> float | None:
 
 def cmd_calibrate(args) -> int:
     from .bench import build_bench
-    from .calibration import default_exposure_series, measure_photon_transfer
-    from .camera_profile import CameraProfile
+    from .calibration import (FlatFieldError, default_exposure_series, flat_exposure_s, measure_flat_field,
+                              measure_photon_transfer)
+    from .camera_profile import CameraProfile, flat_field_path_for, save_flat_field
     from .cli import CommandError
     from .config import load_config
     from .calibration import CalibrationAborted
     from .photon_transfer import PhotonTransferError, plot_photon_transfer
     from .safety import acknowledge
 
+    if args.flat_frames < 0:
+        raise CommandError(f"--flat-frames must be 0 (no flat field) or more, got {args.flat_frames}")
     console = Console(highlight=False)
     cfg = load_config(args.config)
     bench = build_bench(cfg)
@@ -108,16 +115,33 @@ def cmd_calibrate(args) -> int:
                                                  progress=lambda done, total, msg: status.update(f"{done}/{total} frames: {msg}"))
             except (PhotonTransferError, CalibrationAborted) as exc:
                 raise CommandError(str(exc)) from None
+            flat = None
+            if args.flat_frames > 0:
+                try:
+                    t_flat = flat_exposure_s(result)
+                    status.update(f"flat field: {args.flat_frames} flat and dark frames at {t_flat:.4g} s")
+                    flat = measure_flat_field(bench.camera, bench.safety, t_flat, frames=args.flat_frames,
+                                              dark_frames=args.flat_frames)
+                except (FlatFieldError, CalibrationAborted) as exc:
+                    raise CommandError(f"flat field: {exc}") from None
     finally:
         bench.close()
     stamp = time.strftime("%Y%m%d-%H%M%S")
     out = Path(args.output) if args.output else cfg.config_dir / f"{cfg.camera.driver}-profile-{stamp}.json"
+    flat_name = None
+    if flat is not None:
+        flat_path = save_flat_field(flat_field_path_for(out), flat.flat)
+        flat_name = flat_path.name
     profile = CameraProfile.from_result(result, bench.camera, driver_name=cfg.camera.driver,
-                                        wavelength_m=cfg.laser.wavelength_m)
+                                        wavelength_m=cfg.laser.wavelength_m, flat_field_file=flat_name)
     profile.save(out)
     png = Path(args.plot) if args.plot else out.with_suffix(".png")
     plot_photon_transfer(result, png)
     console.print(_table("Photon transfer (EMVA 1288 Release 4.0 Linear)", result.summary_rows()))
+    if flat is not None:
+        console.print(f"Flat field: {flat.frames} flat and {flat.dark_frames} dark frames at {flat.exposure_s:.4g} s, "
+                      f"mean signal {flat.mean_signal_dn:.1f} DN, response spread (PRNU) {100 * flat.prnu_fraction:.2f} % "
+                      f"-> [bold]{flat_field_path_for(out)}[/]")
     console.print(f"Camera profile: [bold]{out}[/]   plots: [bold]{png}[/]")
     console.print(f'Use it: in the bench config, \\[response] profile = "{out}"')
     return 0

@@ -10,9 +10,13 @@ same bits wherever it runs:
 - conversion (``frame_set_intensities``): dark subtraction with the mean of
   the run's dark frames (summed in float64 in acquisition order, then float32,
   as ``Sequencer._take_darks`` does; the response offset when the run has no
-  darks), counts to detected photons with ``checks.Response.electrons`` built
-  from the config stored in the run file, ``numpy.fft.ifftshift`` to the grid
-  orientation (zero frequency at [0, 0]) and negative values clamped to 0;
+  darks), division by the run's flat field (``/entry/flat_field``) when it has
+  one, counts to detected photons with ``checks.Response.electrons`` built from
+  the response the run recorded (``/entry`` attributes ``response_*``, written
+  from the camera profile or ``[response]``; files without them fall back to the
+  ``[response]`` table of the stored config, see ``response_for_run``),
+  ``numpy.fft.ifftshift`` to the grid orientation (zero frequency at [0, 0]) and
+  negative values clamped to 0;
 - solve: ``maskrun.reconstruct.solve`` with a fixed FFT backend (numpy's
   pocketfft) and one solver thread instead of the timed per-process choices,
   a fixed seed for the spectral initialization, no time budget (wall-clock
@@ -150,6 +154,16 @@ def response_from_config_text(config_toml: str, source: str) -> Response:
     return Response(r.gain_dn_per_e, r.offset_dn, r.quantum_efficiency)
 
 
+def response_for_run(rf: RunFile, source: str) -> Response:
+    """The camera response the run used: the ``response_*`` attributes of /entry (the camera profile's
+    values when the run had one), else, for files written before they were recorded, the ``[response]``
+    table of the stored config."""
+    recorded = rf.response_attrs()
+    if recorded is None:
+        return response_from_config_text(rf.config_toml, source)
+    return Response(recorded["gain_dn_per_e"], recorded["offset_dn"], recorded["quantum_efficiency"])
+
+
 def mean_dark_dn(darks: np.ndarray, offset_dn: float) -> np.ndarray | float:
     """Mean dark frame as the sequencer computes it (float64 running sum in order, then float32)."""
     if len(darks) == 0:
@@ -160,16 +174,16 @@ def mean_dark_dn(darks: np.ndarray, offset_dn: float) -> np.ndarray | float:
     return (acc / len(darks)).astype(np.float32)
 
 
-def frame_set_intensities(frames: np.ndarray, dark_dn, response: Response) -> np.ndarray:
+def frame_set_intensities(frames: np.ndarray, dark_dn, response: Response, flat: np.ndarray | None = None) -> np.ndarray:
     """(K, H, W) camera counts -> (K, H, W) float32 detected photons, grid orientation, clamped at 0.
 
     Frame by frame exactly as ``Sequencer._take_pass`` fills its frame-set buffer
-    (``Response.electrons`` then ``np.fft.ifftshift``), then ``np.maximum(., 0)``
-    as it does before submitting.
+    (``Response.electrons`` with the flat field, then ``np.fft.ifftshift``), then
+    ``np.maximum(., 0)`` as it does before submitting.
     """
     out = np.empty(frames.shape, dtype=np.float32)
     for k in range(frames.shape[0]):
-        out[k] = np.fft.ifftshift(response.electrons(frames[k], dark_dn))
+        out[k] = np.fft.ifftshift(response.electrons(frames[k], dark_dn, flat))
     return np.maximum(out, 0.0)
 
 
@@ -178,6 +192,7 @@ class _RunContext:
     masks: np.ndarray
     response: Response
     dark_dn: np.ndarray | float
+    flat: np.ndarray | None  # the run's flat field (mean 1) or None
     exposure_s: np.ndarray  # per frame row
     truth: np.ndarray | None
     lit_pixels: int
@@ -193,12 +208,13 @@ def _run_context(path: str) -> _RunContext:
     ctx = _CONTEXTS.get(key)
     if ctx is None:
         with RunFile(path) as rf:
-            response = response_from_config_text(rf.config_toml, f"{path}:/entry@config_toml")
+            response = response_for_run(rf, f"{path}:/entry@config_toml")
             masks = rf.masks()
             ctx = _RunContext(
                 masks=masks,
                 response=response,
                 dark_dn=mean_dark_dn(rf.darks(), response.offset_dn),
+                flat=rf.flat_field(),
                 exposure_s=rf.frame_info()["exposure_s"].copy(),
                 truth=rf.truth(),
                 lit_pixels=int(np.count_nonzero(np.sum(np.abs(masks.astype(np.complex128)) ** 2, axis=0) > 0)),
@@ -238,7 +254,7 @@ def process_frame_set(task: FrameSetTask) -> FrameSetResult:
     acc = None
     with RunFile(task.run_path) as rf:
         for rows in task.sets:
-            y = frame_set_intensities(rf.frames(list(rows)), ctx.dark_dn, ctx.response)
+            y = frame_set_intensities(rf.frames(list(rows)), ctx.dark_dn, ctx.response, ctx.flat)
             if acc is None:
                 acc = y.astype(np.float64)
             else:

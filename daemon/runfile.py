@@ -140,6 +140,20 @@ class RunFile:
     def truth(self) -> np.ndarray | None:
         return self.entry["truth"][...] if "truth" in self.entry else None
 
+    def flat_field(self) -> np.ndarray | None:
+        """The flat field used by the run (float32, mean 1, frame shape), or None when it had none."""
+        return self.entry["flat_field"][...] if "flat_field" in self.entry else None
+
+    def response_attrs(self) -> dict | None:
+        """The camera response the run used (gain_dn_per_e, offset_dn, quantum_efficiency, profile),
+        or None for files written before it was recorded."""
+        a = self.entry.attrs
+        if "response_gain_dn_per_e" not in a:
+            return None
+        return {"gain_dn_per_e": float(a["response_gain_dn_per_e"]), "offset_dn": float(a["response_offset_dn"]),
+                "quantum_efficiency": float(a["response_quantum_efficiency"]),
+                "profile": str(a.get("response_profile", ""))}
+
     def events(self) -> list[dict]:
         ev = self.entry["events"][...]
         return [

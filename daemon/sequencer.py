@@ -254,6 +254,9 @@ class Sequencer:
         self.ids = FrameIdTracker()
         self.state = State.idle
         self.dark_dn: np.ndarray | float = bench.response.offset_dn
+        # flat field from the camera profile (mean 1) or None: used for the frame checks (photons per
+        # frame, _take_frame) and for the frame sets (_take_pass): electrons = (pixels - dark) / flat / gain
+        self.flat = getattr(bench, "flat_field", None)
         self.timeout_retries = self.rec.retries
         self.exposure_s = float(plan.exposure_s)
         # running totals
@@ -771,7 +774,7 @@ class Sequencer:
                 self._fault("shutter_closed", f"pass {p} mask {k}: the shutter was found closed after the exposure "
                             "(interlock?): frame kept in /entry/refused and retaken")
                 continue
-            chk = check_frame(frame.pixels, self.dark_dn, self.bench.response, self.limits)
+            chk = check_frame(frame.pixels, self.dark_dn, self.bench.response, self.limits, self.flat)
             flags |= chk.flags
             if chk.saturated_fraction > self.limits.max_saturated_fraction and action != "flag":
                 if action == "stop":
@@ -825,8 +828,8 @@ class Sequencer:
                 self.saturated += 1
             if chk.problems:
                 self.event("check", f"pass {p} mask {k}: " + "; ".join(chk.problems), "warning")
-            # frame set buffer: dark-subtracted electrons, zero frequency moved to [0, 0]
-            self._set_buffer[k] = np.fft.ifftshift(resp.electrons(frame.pixels, self.dark_dn))
+            # frame set buffer: dark-subtracted, flat-corrected electrons, zero frequency moved to [0, 0]
+            self._set_buffer[k] = np.fft.ifftshift(resp.electrons(frame.pixels, self.dark_dn, self.flat))
             self._set_exposures[k] = frame.exposure_s
             if self.pub is not None:
                 meta = {"pass_index": p, "mask_index": k, "frame_index": idx, "frame_id": frame.frame_id,

@@ -28,7 +28,12 @@ from .stream import Publisher
 
 def run_header(bench: Bench, ack: Acknowledgement, run_name: str, plan: RunPlan | None = None) -> RunHeader:
     cfg = bench.config
-    extra = {"run_plan": json.dumps(plan.to_record())} if plan is not None else None
+    extra = {"run_plan": json.dumps(plan.to_record())} if plan is not None else {}
+    # the response actually used (a camera profile overrides [response]), so reprocessing needs no config
+    resp = bench.response
+    profile = str((cfg.config_dir / cfg.response.profile).resolve()) if cfg.response.profile else ""
+    extra.update(response_gain_dn_per_e=float(resp.gain_dn_per_e), response_offset_dn=float(resp.offset_dn),
+                 response_quantum_efficiency=float(resp.quantum_efficiency), response_profile=profile)
     return RunHeader(
         run_name=run_name,
         config_toml=cfg.source_text,
@@ -40,6 +45,7 @@ def run_header(bench: Bench, ack: Acknowledgement, run_name: str, plan: RunPlan 
         camera_bit_depth=bench.camera.bit_depth,
         truth=bench.truth,
         extra_attrs=extra,
+        flat_field=getattr(bench, "flat_field", None),
     )
 
 

@@ -15,11 +15,16 @@ Layout (format ``maskrun-run`` version 1; documented in README.md):
                                 and retaken shorter, shutter found closed); kept, never used
     /entry/refused_info         (R,) compound, same fields as frame_info; ``flags`` says why
     /entry/truth                (H, W) complex128, simulated benches only, same units as estimates
+    /entry/flat_field           (H, W) float32, per-pixel response (mean 1) from the camera profile, only
+                                when the profile has one; electrons = (counts - dark) / flat / gain
 
 Attributes of /entry (written once, before the file goes into single-writer /
 multiple-reader mode): format, format_version, run_name, created_utc,
 config_toml, safety_acknowledgement (JSON), grid_shape, mask_count,
-frame_orientation, laser_wavelength_m, camera_bit_depth.
+frame_orientation, laser_wavelength_m, camera_bit_depth, and (written by
+``session.run_header``) run_plan and the camera response actually used:
+response_gain_dn_per_e, response_offset_dn, response_quantum_efficiency,
+response_profile (the profile path, "" without one).
 
 Crash safety: the file is created with the latest HDF5 format and switched to
 SWMR mode before the first frame, then flushed after every frame. Datasets grow
@@ -146,6 +151,7 @@ class RunHeader:
     camera_bit_depth: int
     truth: np.ndarray | None = None
     extra_attrs: dict | None = None
+    flat_field: np.ndarray | None = None  # (H, W) per-pixel response, mean 1; stored as /entry/flat_field
 
 
 def _encode(text: str, nbytes: int) -> bytes:
@@ -291,6 +297,11 @@ class RunStore:
         e.create_dataset("refused_info", (0,), maxshape=(None,), chunks=(64,), dtype=FRAME_INFO_DTYPE)
         if h.truth is not None:
             e.create_dataset("truth", data=np.asarray(h.truth, dtype=np.complex128))
+        if h.flat_field is not None:
+            flat = np.asarray(h.flat_field, dtype=np.float32)
+            if flat.shape != (rows, cols):
+                raise StoreError(f"flat field shape {flat.shape} does not match the frames {(rows, cols)}")
+            e.create_dataset("flat_field", data=flat)
 
     @classmethod
     def reopen(cls, path: str | Path, text_log: bool = True) -> RunStore:

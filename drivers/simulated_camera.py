@@ -5,7 +5,7 @@ diffraction pattern while the shutter is open, nothing while it is closed) or, w
 the camera runs on its own (no optics, e.g. in the conformance kit), from a uniform
 illumination of ``standalone_photon_rate_per_s`` photons per pixel per second. The
 photons are turned into digital numbers by ``maskrun.simulators.camera_model.CameraNoiseModel``
-(photon shot noise, dark current, hot pixels, read noise, gain, offset, full well,
+(photon shot noise, photo-response non-uniformity, dark current, hot pixels, read noise, gain, offset, full well,
 quantisation, ADC clipping). Frames are deterministic for a given ``seed``.
 
 Acquisition:
@@ -82,6 +82,7 @@ class SimulatedCamera(Camera):
         full_well_e: float = Field(default=_DEFAULT_MODEL.full_well_e, description="electrons a pixel holds")
         hot_pixel_fraction: float = Field(default=_DEFAULT_MODEL.hot_pixel_fraction, description="fraction of pixels with a high dark current")
         hot_pixel_dark_current_e_per_s: float = Field(default=_DEFAULT_MODEL.hot_pixel_dark_current_e_per_s, description="dark current of hot pixels, electrons per second")
+        prnu_fraction: float = Field(default=_DEFAULT_MODEL.prnu_fraction, description="photo-response non-uniformity (EMVA 1288 PRNU): per-pixel response spread, std / mean")
         exposure_s: float = Field(default=0.01, gt=0, description="exposure at start, seconds")
         min_exposure_s: float = Field(default=1e-5, gt=0, description="shortest exposure the camera accepts, s")
         max_exposure_s: float = Field(default=10.0, gt=0, description="longest exposure the camera accepts, s")
@@ -134,6 +135,7 @@ class SimulatedCamera(Camera):
         self._trigger_mode = TriggerMode.software
         self.noise_model = _noise_model_from(s, self._gain)
         self._hot_full = self.noise_model.hot_pixel_mask(self._sensor_shape, s.seed)
+        self._prnu_full = self.noise_model.prnu_gain_map(self._sensor_shape, s.seed)
         self._rng = np.random.default_rng(s.seed)
         self._photons = np.zeros(self._sensor_shape, dtype=np.float64)
         self._pending: list[tuple[float, float, np.ndarray, dict]] = []  # (t_trigger, exposure, photons, sim)
@@ -207,6 +209,11 @@ class SimulatedCamera(Camera):
     @property
     def bit_depth(self) -> int:
         return int(self.noise_model.bit_depth)
+
+    @property
+    def prnu_gain_map(self) -> np.ndarray | None:
+        """The sensor's per-pixel response factors (full sensor, float32, mean 1), None without PRNU."""
+        return None if self._prnu_full is None else self._prnu_full.copy()
 
     # --------------------------------------------------------- acquisition
     @property
@@ -366,7 +373,8 @@ class SimulatedCamera(Camera):
         rows, cols = (rows // b) * b, (cols // b) * b
         crop = photons[r0 : r0 + rows, c0 : c0 + cols]
         hot = self._hot_full[r0 : r0 + rows, c0 : c0 + cols]
-        dn = self.noise_model.render(crop, exposure_s, self._rng, hot_pixels=hot)
+        prnu = None if self._prnu_full is None else self._prnu_full[r0 : r0 + rows, c0 : c0 + cols]
+        dn = self.noise_model.render(crop, exposure_s, self._rng, hot_pixels=hot, prnu_map=prnu)
         if b == 1:
             return dn
         summed = dn.reshape(rows // b, b, cols // b, b).sum(axis=(1, 3), dtype=np.uint32)
@@ -386,4 +394,5 @@ def _noise_model_from(settings, gain: float) -> CameraNoiseModel:
         full_well_e=settings.full_well_e,
         hot_pixel_fraction=settings.hot_pixel_fraction,
         hot_pixel_dark_current_e_per_s=settings.hot_pixel_dark_current_e_per_s,
+        prnu_fraction=settings.prnu_fraction,
     )

@@ -3,7 +3,9 @@
 The model turns the number of photons that fall on each pixel during one
 exposure into the digital numbers (DN) a camera would deliver:
 
-1. photons -> photo-electrons: Poisson with mean ``quantum_efficiency * photons``;
+1. photons -> photo-electrons: Poisson with mean ``quantum_efficiency * photons``, times the
+   pixel's own response factor when ``prnu_fraction`` > 0 (photo-response non-uniformity,
+   PRNU: a fixed per-pixel gain map of mean 1 and spread ``prnu_fraction``, see ``prnu_gain_map``);
 2. plus dark electrons: Poisson with mean ``dark_current_e_per_s * exposure_s``
    (hot pixels use ``hot_pixel_dark_current_e_per_s`` instead);
 3. the well holds at most ``full_well_e`` electrons (clipped);
@@ -49,6 +51,9 @@ class CameraNoiseModel:
         full_well_e: electrons one pixel can hold, > 0.
         hot_pixel_fraction: fraction of pixels with a high dark current, 0..1.
         hot_pixel_dark_current_e_per_s: dark current of those hot pixels, >= 0.
+        prnu_fraction: photo-response non-uniformity (EMVA 1288 R4.0 Linear: PRNU), the spatial
+            spread (std / mean) of the per-pixel response to light, 0 <= prnu < 0.3. It scales
+            the photo-electrons only (not the dark signal), as a per-pixel quantum efficiency would.
     """
 
     quantum_efficiency: float = 0.6
@@ -60,6 +65,7 @@ class CameraNoiseModel:
     full_well_e: float = 15000.0
     hot_pixel_fraction: float = 0.0
     hot_pixel_dark_current_e_per_s: float = 2000.0
+    prnu_fraction: float = 0.0
 
     def __post_init__(self) -> None:
         self.validate()
@@ -111,6 +117,12 @@ class CameraNoiseModel:
                 f"got {self.hot_pixel_dark_current_e_per_s}"
             )
 
+        prnu = finite("prnu_fraction")
+        if not 0.0 <= prnu < 0.3:
+            raise ValueError(
+                f"prnu_fraction must be in [0, 0.3) (per-pixel response spread, std / mean), got {prnu}"
+            )
+
     # -------------------------------------------------------------- properties
     @property
     def max_dn(self) -> int:
@@ -153,6 +165,23 @@ class CameraNoiseModel:
             mask[rng.choice(n, size=count, replace=False)] = True
         return mask.reshape(shape)
 
+    def prnu_gain_map(self, shape: tuple[int, ...], seed: int | None) -> np.ndarray | None:
+        """Per-pixel response factors (float32) of mean exactly 1 and spread exactly ``prnu_fraction``
+        over ``shape``; None when ``prnu_fraction`` is 0.
+
+        Deterministic for a given ``seed`` and ``shape`` (a camera keeps its response map); drawn
+        from its own random stream, so it does not change the hot pixels or the frame noise.
+        """
+        if self.prnu_fraction <= 0.0:
+            return None
+        shape = tuple(int(s) for s in shape)
+        rng = np.random.default_rng(None if seed is None else [int(seed), 0x50524E55])  # 'PRNU'
+        z = rng.standard_normal(size=shape)
+        if z.size > 1 and z.std() > 0:
+            z = (z - z.mean()) / z.std()
+        gain = 1.0 + self.prnu_fraction * z
+        return np.maximum(gain, 0.05).astype(np.float32)
+
     def render(
         self,
         photons: np.ndarray,
@@ -160,6 +189,7 @@ class CameraNoiseModel:
         rng: np.random.Generator,
         hot_pixels: np.ndarray | None = None,
         out: np.ndarray | None = None,
+        prnu_map: np.ndarray | None = None,
     ) -> np.ndarray:
         """Render one frame in DN.
 
@@ -168,6 +198,8 @@ class CameraNoiseModel:
         rng: numpy Generator (seed it for reproducible frames).
         hot_pixels: optional boolean mask of photons' shape (see ``hot_pixel_mask``).
         out: optional preallocated array of photons' shape and ``self.dtype`` to write into.
+        prnu_map: optional per-pixel response factors of photons' shape (see ``prnu_gain_map``);
+            they multiply the mean photo-electrons.
         Returns the frame (``out`` if given) as uint16, or uint8 when bit_depth <= 8.
         """
         photons = np.asarray(photons)
@@ -192,8 +224,13 @@ class CameraNoiseModel:
                 f"hot_pixels mask shape {hot_pixels.shape} does not match photons shape {photons.shape}"
             )
 
+        if prnu_map is not None and prnu_map.shape != photons.shape:
+            raise ValueError(f"prnu_map shape {prnu_map.shape} does not match photons shape {photons.shape}")
+
         # Mean electrons per pixel (signal + dark), float64 so the Poisson draw is exact.
         lam = np.multiply(photons, self.quantum_efficiency, dtype=np.float64)
+        if prnu_map is not None:
+            lam *= prnu_map
         lam += self.dark_current_e_per_s * exposure_s
         if hot_pixels is not None and self.hot_pixel_dark_current_e_per_s != self.dark_current_e_per_s:
             lam[hot_pixels] += (self.hot_pixel_dark_current_e_per_s - self.dark_current_e_per_s) * exposure_s

@@ -6,7 +6,7 @@ from maskrun.daemon.config import BenchConfig, demo_config_text, parse_config
 
 
 def small_bench_text(*, grid=32, sensor=48, masks=6, passes=2, darks=2, extra_camera="", extra="", exposure_s=0.002,
-                     recon_iterations=60) -> str:
+                     recon_iterations=60, prnu_fraction=0.0) -> str:
     text = demo_config_text()
     # same photons per pixel as the demo bench, on a smaller grid and a shorter exposure
     rate = 2.2e9 * (grid * grid) / (128 * 128) * (0.01 / exposure_s)
@@ -21,6 +21,8 @@ def small_bench_text(*, grid=32, sensor=48, masks=6, passes=2, darks=2, extra_ca
         "min_photons_per_frame = 1.0e6": "min_photons_per_frame = 1.0e4",
         "iterations_per_update = 100": f"iterations_per_update = {recon_iterations}",
         "seed = 11": "seed = 11\n" + extra_camera,
+        # the demo camera has a 1 % pixel response spread (PRNU); test benches have none unless asked
+        "prnu_fraction = 0.01": f"prnu_fraction = {prnu_fraction}",
     }
     for old, new in repl.items():
         assert old in text, old

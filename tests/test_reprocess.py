@@ -27,6 +27,7 @@ from maskrun.daemon.reprocess import (
     process_frame_set,
     read_results,
     reprocess_runs,
+    response_for_run,
     response_from_config_text,
     results_path_for,
 )
@@ -52,7 +53,7 @@ def run_path(tmp_path_factory) -> Path:
 
 def test_conversion_follows_the_camera_model_and_grid_convention(run_path):
     with RunFile(run_path) as rf:
-        resp = response_from_config_text(rf.config_toml, "stored")
+        resp = response_for_run(rf, "stored")
         darks = rf.darks()
         rows = rf.complete_sets()[0].rows
         frames = rf.frames(rows)
@@ -86,7 +87,7 @@ def test_each_frame_set_is_reconstructed_into_a_new_file_and_the_run_is_untouche
     # the estimates explain the measured data: |F(m_k x)|^2 matches the frame set (in detected photons per
     # frame set) to the shot-noise level, and the error against the stored truth is a few per cent
     with RunFile(run_path) as rf:
-        resp = response_from_config_text(rf.config_toml, "stored")
+        resp = response_for_run(rf, "stored")
         sets = rf.complete_sets()
         y0 = frame_set_intensities(rf.frames(sets[0].rows), mean_dark_dn(rf.darks(), resp.offset_dn), resp)
         masks = rf.masks()
@@ -168,3 +169,54 @@ def test_cli_reconstruct(run_path, tmp_path, capsys):
     assert "already exists" in capsys.readouterr().err
     assert cli_main(["reconstruct", str(tmp_path / "missing.h5")]) == 2
     assert "no such run file" in capsys.readouterr().err
+
+
+def test_a_run_with_a_profile_reprocesses_with_the_profile_gain(tmp_path):
+    """The run file records the response actually used; reprocessing must not fall back to [response]."""
+    from benchcfg import small_bench_text
+    from maskrun.daemon.camera_profile import CameraProfile
+    from maskrun.daemon.config import parse_config
+
+    # the true camera: gain 0.3 DN/e-, offset 100 DN, QE 0.6 (the demo camera); [response] says 0.5
+    CameraProfile(gain_dn_per_e=0.3, offset_dn=100.0, dark_noise_e=3.0, saturation_capacity_e=12000.0,
+                  quantum_efficiency=0.6, linearity_error_pct=0.1, bit_depth=12, frame_shape=(32, 32),
+                  camera_driver="simulated").save(tmp_path / "profile.json")
+    text = small_bench_text(passes=2).replace(
+        "[response]                  # counts -> photons; from the data sheet until 'maskrun calibrate' gives a profile\n"
+        "gain_dn_per_e = 0.3", "[response]\ngain_dn_per_e = 0.5")
+    text = text.replace("quantum_efficiency = 0.6\n\n[modulator]",
+                        f'quantum_efficiency = 0.6\nprofile = "{tmp_path / "profile.json"}"\n\n[modulator]')
+    assert "gain_dn_per_e = 0.5" in text
+    cfg = parse_config(text, str(tmp_path / "bench.toml"))
+    summary = run_foreground(cfg, RunRequest(acknowledge_unattended=True, output_dir=str(tmp_path / "out")),
+                             Console(file=io.StringIO()))
+    assert summary.state.value == "finished", summary.message
+    path = Path(summary.output_path)
+    with RunFile(path) as rf:
+        assert rf.response_attrs()["gain_dn_per_e"] == pytest.approx(0.3)
+        assert rf.response_attrs()["profile"] == str((tmp_path / "profile.json").resolve())
+        assert response_for_run(rf, "x").gain_dn_per_e == pytest.approx(0.3)
+        assert response_from_config_text(rf.config_toml, "x").gain_dn_per_e == pytest.approx(0.5)
+        live = rf.estimate_info()
+    (rep,) = reprocess_runs([path], ReprocessOptions(iterations=ITERATIONS, mode="cumulative"), InProcessRunner(),
+                            output_dir=tmp_path)
+    _, info, _ = read_results(rep.results_path)
+    for row in info:  # the live worker converted with the profile's gain; so must the reprocessing
+        (match,) = live[live["pass_index"] == row["pass_index"]]
+        assert np.isclose(match["photons"], row["photons"], rtol=1e-6)
+    assert np.all(info["true_error"] < 0.1)  # with the [response] gain the photons would be 0.6x and off
+
+
+def test_files_without_recorded_response_fall_back_to_the_stored_config(run_path, tmp_path):
+    old = tmp_path / "old.h5"
+    old.write_bytes(run_path.read_bytes())
+    with h5py.File(old, "a") as f:  # as written before the response was recorded
+        for name in ("response_gain_dn_per_e", "response_offset_dn", "response_quantum_efficiency", "response_profile"):
+            del f["entry"].attrs[name]
+        f["entry"].attrs["config_toml"] = f["entry"].attrs["config_toml"].replace(
+            "gain_dn_per_e = 0.3\noffset_dn", "gain_dn_per_e = 0.25\noffset_dn")
+    with RunFile(old) as rf:
+        assert rf.response_attrs() is None
+        assert response_for_run(rf, "x").gain_dn_per_e == pytest.approx(0.25)
+    with RunFile(run_path) as rf:
+        assert response_for_run(rf, "x").gain_dn_per_e == pytest.approx(0.3)
