@@ -100,7 +100,11 @@ def test_gain_is_recovered_over_a_range_of_cameras(gain, read, full_well):
     # itself scatters by sqrt(2/N) (1.1 % for 128 x 128 pixels), which may move the peak by a step.
     r = analyse_photon_transfer(simulate_series(model, np.linspace(0.015, 1.35, 90), rate, shape=(128, 128)))
     assert r.gain_dn_per_e == pytest.approx(gain, rel=0.03)
-    assert r.saturation_capacity_e == pytest.approx(model.saturation_electrons, rel=0.05)
+    # The variance peak sits up to ~3-4 shot-noise sigma below the well (see above), plus one step
+    # and the scatter of the variance estimate: allow that bias below, 3 % above.
+    well = model.saturation_electrons
+    low = 1.0 - (4.0 / np.sqrt(well) + 0.03)
+    assert low * well <= r.saturation_capacity_e <= 1.03 * well
 
 
 def test_linearity_error_sees_a_nonlinear_response():
