@@ -51,6 +51,12 @@ def _cpu_workers() -> int:
     return n if _MAX_WORKERS is None else min(n, _MAX_WORKERS)
 
 
+def _same_buffer(a: np.ndarray, b: np.ndarray) -> bool:
+    """True when a and b are the same memory with the same layout (cheap pointer check)."""
+    return (a.__array_interface__["data"][0] == b.__array_interface__["data"][0]
+            and a.shape == b.shape and a.strides == b.strides and a.dtype == b.dtype)
+
+
 def _run(backend: str, buf: np.ndarray, inverse: bool) -> np.ndarray:
     """Transform ``buf`` over its last two axes in place; return the result array."""
     if backend == "numpy":
@@ -64,7 +70,10 @@ def _run(backend: str, buf: np.ndarray, inverse: bool) -> np.ndarray:
         backend = "scipy-1"
     f = _sfft.ifft2 if inverse else _sfft.fft2
     out = f(buf, norm="ortho", overwrite_x=True, workers=workers)
-    if out is not buf:
+    # With overwrite_x scipy usually transforms in place and returns a *view* of buf (a new
+    # array object over the same memory): copy back only when the result really lives elsewhere,
+    # else the self-copy costs a full extra pass over the K frames per transform.
+    if not _same_buffer(out, buf):
         buf[...] = out
     return buf
 
