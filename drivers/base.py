@@ -80,6 +80,28 @@ class BenchContext:
         return port
 
 
+def checked_roi(value, sensor_shape: tuple[int, int], *, what: str = "sensor",
+                hint: str = "give row0 + rows <= sensor rows and col0 + cols <= sensor cols") -> tuple[int, int, int, int]:
+    """Validate a region of interest (row0, col0, rows, cols) against ``sensor_shape``.
+
+    Returns it as a tuple of ints; raises DeviceMisconfigured naming the problem. Drivers call
+    this from their ``roi`` setter so every camera refuses a bad ROI the same way.
+    """
+    from .errors import DeviceMisconfigured
+
+    try:
+        roi = tuple(int(v) for v in value)
+        if len(roi) != 4:
+            raise ValueError
+    except (TypeError, ValueError):
+        raise DeviceMisconfigured(f"roi must be (row0, col0, rows, cols), got {value!r}", device="camera") from None
+    r0, c0, rows, cols = roi
+    sr, sc = sensor_shape
+    if r0 < 0 or c0 < 0 or rows < 1 or cols < 1 or r0 + rows > sr or c0 + cols > sc:
+        raise DeviceMisconfigured(f"roi {roi} does not fit the {sr} x {sc} {what}", device="camera", hint=hint)
+    return roi
+
+
 class Device(abc.ABC):
     """Common life cycle: construct (no I/O), open(), close(); usable as a context manager."""
 

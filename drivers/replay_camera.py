@@ -52,7 +52,7 @@ import h5py
 import numpy as np
 from pydantic import Field
 
-from .base import Camera, DriverSettings, Frame
+from .base import Camera, DriverSettings, Frame, checked_roi
 from .errors import DeviceDisconnected, DeviceFault, DeviceMisconfigured, DeviceTimeout
 
 __all__ = ["ReplayCamera"]
@@ -218,16 +218,8 @@ class ReplayCamera(Camera):
 
     @roi.setter
     def roi(self, value) -> None:
-        try:
-            r0, c0, rows, cols = (int(v) for v in value)
-        except (TypeError, ValueError):
-            raise DeviceMisconfigured(f"roi must be (row0, col0, rows, cols), got {value!r}", device="camera") from None
-        sr, sc = self.sensor_shape
-        if r0 < 0 or c0 < 0 or rows < 1 or cols < 1 or r0 + rows > sr or c0 + cols > sc:
-            raise DeviceMisconfigured(
-                f"roi {(r0, c0, rows, cols)} does not fit the recorded {sr} x {sc} frames", device="camera",
-                hint="a replayed ROI must be the stored frame size or a part of it")
-        self._roi = (r0, c0, rows, cols)
+        self._roi = checked_roi(value, self.sensor_shape, what="recorded frames",
+                                hint="a replayed ROI must be the stored frame size or a part of it")
 
     @property
     def bit_depth(self) -> int:

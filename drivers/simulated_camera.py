@@ -47,7 +47,7 @@ from pydantic import BaseModel, ConfigDict, Field, field_validator, model_valida
 
 from maskrun.simulators.camera_model import CameraNoiseModel
 
-from .base import Camera, DriverSettings, Frame, TriggerMode
+from .base import Camera, DriverSettings, Frame, TriggerMode, checked_roi
 from .errors import DeviceDisconnected, DeviceFault, DeviceMisconfigured, DeviceTimeout
 
 __all__ = ["SimulatedCamera", "CameraFault"]
@@ -176,15 +176,7 @@ class SimulatedCamera(Camera):
 
     @roi.setter
     def roi(self, value) -> None:
-        try:
-            r0, c0, rows, cols = (int(v) for v in value)
-        except (TypeError, ValueError):
-            raise DeviceMisconfigured(f"roi must be (row0, col0, rows, cols), got {value!r}", device="camera") from None
-        sr, sc = self._sensor_shape
-        if r0 < 0 or c0 < 0 or rows < 1 or cols < 1 or r0 + rows > sr or c0 + cols > sc:
-            raise DeviceMisconfigured(
-                f"roi {(r0, c0, rows, cols)} does not fit the {sr} x {sc} sensor", device="camera",
-                hint="give row0 + rows <= sensor rows and col0 + cols <= sensor cols")
+        r0, c0, rows, cols = checked_roi(value, self._sensor_shape)
         if rows < self._binning or cols < self._binning:
             raise DeviceMisconfigured(f"roi {rows} x {cols} is smaller than the binning {self._binning}",
                                       device="camera")

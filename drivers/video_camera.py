@@ -30,7 +30,7 @@ from typing import Literal
 import numpy as np
 from pydantic import Field
 
-from .base import Camera, DriverSettings, Frame
+from .base import Camera, DriverSettings, Frame, checked_roi
 from .errors import DeviceDisconnected, DeviceMisconfigured, DeviceTimeout
 
 __all__ = ["VideoCaptureCamera", "import_cv2"]
@@ -228,17 +228,8 @@ class VideoCaptureCamera(Camera):
 
     @roi.setter
     def roi(self, value) -> None:
-        try:
-            roi = tuple(int(v) for v in value)
-            if len(roi) != 4:
-                raise ValueError
-        except (TypeError, ValueError):
-            raise DeviceMisconfigured(f"roi must be (row0, col0, rows, cols), got {value!r}", device="camera") from None
-        if not self._fits(roi):
-            sr, sc = self.sensor_shape
-            raise DeviceMisconfigured(f"roi {roi} does not fit the {sr} x {sc} video frame", device="camera",
-                                      hint="give row0 + rows <= frame rows and col0 + cols <= frame cols")
-        self._roi = roi
+        self._roi = checked_roi(value, self.sensor_shape, what="video frame",
+                                hint="give row0 + rows <= frame rows and col0 + cols <= frame cols")
 
     @property
     def bit_depth(self) -> int:

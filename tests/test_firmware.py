@@ -19,20 +19,6 @@ def optics():
     return SimulatedOptics(np.ones((8, 8)), np.exp(2j * np.pi * rng.random((4, 8, 8))), 1e6, (8, 8))
 
 
-@pytest.fixture
-def firmware():
-    handles = []
-
-    def start(*args, **kw):
-        h = start_firmware(*args, **kw)
-        handles.append(h)
-        return h
-
-    yield start
-    for h in handles:
-        h.stop()
-
-
 def _open(path):
     return serial.Serial(path, 115200, timeout=0.5)
 

@@ -119,7 +119,7 @@ def test_sub_roi_cuts_the_stored_frames_and_a_larger_roi_is_refused(run_path):
         f = cam.grab(1.0)
         assert f.pixels.shape == (3, 4)
         np.testing.assert_array_equal(f.pixels[:, 0], 100 * f.frame_id + np.arange(2, 5))
-        with pytest.raises(DeviceMisconfigured, match="does not fit the recorded 6 x 8"):
+        with pytest.raises(DeviceMisconfigured, match="does not fit the 6 x 8 recorded frames"):
             cam.roi = (0, 0, H + 1, W)
         with pytest.raises(DeviceMisconfigured):
             cam.roi = (5, 0, 2, W)
