@@ -25,6 +25,7 @@ from maskrun.daemon.runfile import RunFile
 from maskrun.daemon.safety import make_acknowledgement
 from maskrun.daemon.sequencer import RunControl, RunPlan, State
 from maskrun.daemon.session import execute_run
+from maskrun.daemon.stream import Subscriber
 from maskrun.daemon.store import (
     FLAG_AFTER_PAUSE,
     FLAG_EXPOSURE_SHORTENED,
@@ -347,14 +348,27 @@ def _console():
 
 
 def test_foreground_signals_sigterm_stops_and_sigusr1_resumes(tmp_path):
-    """The real signal path of a foreground run: SIGUSR1 resumes a pause, SIGTERM stops cleanly."""
-    text = bench_text(camera_faults='{kind = "timeout", at_frame = 3, count = 3}', passes=40)
+    """The real signal path of a foreground run: SIGUSR1 resumes a pause, SIGTERM stops cleanly.
+
+    The operator thread stops the run only after a frame set has arrived on the live stream
+    (a real ZeroMQ subscriber), so the test does not depend on how fast this machine is."""
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    address = f"tcp://127.0.0.1:{port}"
+    text = bench_text(camera_faults='{kind = "timeout", at_frame = 3, count = 3}', passes=400,
+                      extra=f'[stream]\npublish_address = "{address}"\n')
     cfg = parse_config(text, str(tmp_path / "bench.toml"))
     out = tmp_path / "out"
+    ctx = zmq.Context()
+    sub = Subscriber(ctx, address, topics=("frameset",))
+    seen_sets = []
 
     def operator():
         log = None
-        deadline = time.monotonic() + 20
+        deadline = time.monotonic() + 30
         while time.monotonic() < deadline:
             logs = list(out.glob("*.log")) if out.exists() else []
             if logs and " paused " in logs[0].read_text():
@@ -363,17 +377,21 @@ def test_foreground_signals_sigterm_stops_and_sigusr1_resumes(tmp_path):
             time.sleep(0.02)
         assert log is not None
         os.kill(os.getpid(), signal.SIGUSR1)  # resume
-        while " resumed " not in log.read_text() and time.monotonic() < deadline:
-            time.sleep(0.02)
-        time.sleep(0.2)
+        while not seen_sets and time.monotonic() < deadline:
+            msg = sub.receive(timeout_s=0.1)
+            if msg is not None:
+                seen_sets.append(msg.header)
         os.kill(os.getpid(), signal.SIGTERM)  # stop
 
     t = threading.Thread(target=operator, daemon=True)
     t.start()
     summary = run_foreground(cfg, RunRequest(acknowledge_unattended=True, output_dir=str(out)), _console())
     t.join(5)
+    sub.close()
+    ctx.term()
+    assert seen_sets, "no frame set was published after the resume"
     assert summary.state == State.stopped and "SIGTERM" in summary.message
-    assert summary.pauses == 1 and 0 < summary.passes_complete < 40
+    assert summary.pauses == 1 and 0 < summary.passes_complete < 400
     with RunFile(summary.output_path) as rf:
         kinds = [e["kind"] for e in rf.events()]
         assert "paused" in kinds and "resumed" in kinds and kinds[-1] == "run_end"
