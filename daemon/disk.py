@@ -49,8 +49,10 @@ class RunSizeEstimate:
 
 
 def expected_run_bytes(*, grid_shape, mask_count: int, passes: int, dark_frames: int, frame_itemsize: int = 2,
-                       estimates: bool = True, truth: bool = False, events_per_frame: float = 0.5) -> RunSizeEstimate:
-    """Expected size of a run file in bytes (uncompressed chunks, one per frame)."""
+                       estimates: bool = True, truth: bool = False, flat_field: bool = False,
+                       events_per_frame: float = 0.5) -> RunSizeEstimate:
+    """Expected size of a run file in bytes (uncompressed chunks, one per frame; flat_field: the
+    float32 per-pixel response map from a camera profile is stored too)."""
     h, w = (int(v) for v in grid_shape)
     px = h * w
     frames = passes * mask_count
@@ -58,7 +60,7 @@ def expected_run_bytes(*, grid_shape, mask_count: int, passes: int, dark_frames:
     frame_row = px * frame_itemsize + FRAME_INFO_DTYPE.itemsize + 2 * _ROW_OVERHEAD_BYTES
     size = (frames + dark_frames) * frame_row
     size += est * (px * 8 + ESTIMATE_INFO_DTYPE.itemsize + 2 * _ROW_OVERHEAD_BYTES)
-    size += mask_count * px * 8 + (px * 16 if truth else 0)
+    size += mask_count * px * 8 + (px * 16 if truth else 0) + (px * 4 if flat_field else 0)
     size += int(math.ceil((frames + dark_frames) * events_per_frame + 20)) * EVENT_DTYPE.itemsize
     size += _FILE_OVERHEAD_BYTES
     size += RunStore.SPACE_RESERVE_BYTES + 4 * px * frame_itemsize  # the emergency reserve beside the file

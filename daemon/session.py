@@ -66,7 +66,8 @@ def expected_bytes(bench: Bench, plan: RunPlan) -> int:
     est = expected_run_bytes(grid_shape=bench.grid_shape, mask_count=bench.masks.shape[0],
                              passes=plan.passes - plan.first_pass, dark_frames=plan.dark_frames,
                              frame_itemsize=frame_itemsize(bench.camera.bit_depth),
-                             estimates=cfg.reconstruction.enabled, truth=bench.truth is not None)
+                             estimates=cfg.reconstruction.enabled, truth=bench.truth is not None,
+                             flat_field=bench.flat_field is not None)
     return est.bytes_total
 
 

@@ -158,13 +158,12 @@ class WorkerLoop:
             file_masks = np.frombuffer(parts[3], dtype=np.complex64).reshape(hdr.shape)
         masks = build_masks(hdr.masks, file_masks)
         engine = self._engine_for(hdr, masks)
-        if hdr.data_passes is not None and hdr.options.mode == "accumulate" and hdr.options.method == "auto":
-            # what accumulate mode's 'auto' does: the K-dependent default from scratch (hybrid, or RAAR for
-            # K <= 4), then error-reduction polish from the warm start when that default is hybrid
-            from maskrun.reconstruct.solvers import default_method
+        if hdr.data_passes is not None and hdr.options.mode == "accumulate":
+            # the daemon sends the running mean; the engine (a one-set window) chooses as an accumulating one would
+            from maskrun.reconstruct.incremental import update_method
 
-            start = default_method(masks.shape[0])
-            engine.method = "er" if (start == "hybrid" and engine.estimate is not None) else start
+            engine.method = update_method(hdr.options.method, masks.shape[0], warm_start=engine.estimate is not None,
+                                          accumulating=True)
         t0 = time.perf_counter()
         upd = engine.update(intensities)
         if hdr.data_passes is not None:  # the data are a mean over data_passes frame sets

@@ -42,13 +42,31 @@ from . import solvers as _s
 from .bounds import shot_noise_relative_error
 from .validation import ReconstructionInputError, check_dtype, check_intensities, check_masks
 
-__all__ = ["IncrementalEngine", "EngineUpdate", "ENGINE_MODES"]
+__all__ = ["IncrementalEngine", "EngineUpdate", "ENGINE_MODES", "update_method"]
 
 ENGINE_MODES = ("accumulate", "follow")
 # Power iterations for the very first estimate (each costs about one ER
 # iteration); 15 already reach the shot-noise floor on the 128x128 and
 # 256x256 demo problems after 35 hybrid iterations.
 SPECTRAL_START_ITERATIONS = 15
+
+
+def update_method(method: str, mask_count: int, *, warm_start: bool, accumulating: bool) -> str:
+    """The solver one engine update runs.
+
+    "auto" is the K-dependent default from scratch (``solvers.default_method``:
+    hybrid, or RAAR for K <= 4); once an accumulating engine has an estimate,
+    a hybrid default becomes error reduction from the warm start (the RAAR
+    phase would only wander away from an estimate that is already close).
+    Any other method is used as given. The reconstruction worker calls this
+    too, so a live update and an offline one choose alike.
+    """
+    if method != "auto":
+        return method
+    chosen = _s.default_method(mask_count)
+    if chosen == "hybrid" and warm_start and accumulating:
+        return "er"
+    return chosen
 
 
 @dataclass
@@ -163,11 +181,8 @@ class IncrementalEngine:
                 cons(x)
         else:
             x = self._x
-        method = self.method
-        if method == "auto":
-            method = _s.default_method(self.shape[0])
-            if method == "hybrid" and not first and self.mode == "accumulate":
-                method = "er"
+        method = update_method(self.method, self.shape[0], warm_start=not first,
+                               accumulating=self.mode == "accumulate")
         args = (ws, x, n, cons, residuals, stopper, deadline, None, [])
         if method == "hybrid":
             x, it = _s._run_hybrid(*args)

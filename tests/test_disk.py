@@ -63,6 +63,13 @@ def test_expected_size_matches_a_real_file(tmp_path):
     assert real <= est <= 4 * real, (real, est)
 
 
+def test_expected_size_counts_the_flat_field():
+    """A camera profile's flat map is stored in the file as (H, W) float32: 4 bytes per pixel more."""
+    args = dict(grid_shape=(32, 48), mask_count=4, passes=6, dark_frames=1)
+    without = expected_run_bytes(**args).bytes_total
+    assert expected_run_bytes(**args, flat_field=True).bytes_total - without == 32 * 48 * 4
+
+
 def test_run_is_refused_when_the_real_free_space_is_below_the_reserve(tmp_path):
     free_mb = shutil.disk_usage(tmp_path).free / 2**20
     text = bench_text().replace("[run]\n", f"[run]\nmin_free_disk_mb = {free_mb + 1024:.0f}\n", 1)

@@ -313,3 +313,62 @@ def test_unsafe_addresses_are_refused(capsys):
     assert cli_main(["worker", "--connect", "tcp://127.0.0.1:0"]) == 2
     assert "port 0" in capsys.readouterr().err
     assert worker_endpoints("tcp://[::1]:7000") == ("tcp://[::1]:7000", "tcp://[::1]:7001")
+
+
+def test_worker_fed_running_means_matches_an_accumulating_engine():
+    """A worker given the daemon's running mean (data_passes) picks the same solver and reaches the same
+    estimate as an accumulate-mode IncrementalEngine fed the frame sets one by one (real PUSH/PULL on loopback)."""
+    from maskrun.daemon.worker import FrameSetHeader, MaskSpec, ReconOptions, WorkerLoop, mask_digest
+    from maskrun.reconstruct import IncrementalEngine
+    from maskrun.reconstruct.incremental import update_method
+
+    rng = np.random.default_rng(5)
+    masks = make_masks("octanary", K, SHAPE, seed=3)
+    x = rng.standard_normal(SHAPE) + 1j * rng.standard_normal(SHAPE)
+    y = forward(x, masks) * 2e3
+    sets = [rng.poisson(y).astype(np.float32) for _ in range(3)]
+
+    ctx = zmq.Context()
+    to_worker, from_worker = ctx.socket(zmq.PUSH), ctx.socket(zmq.PULL)
+    port_out = to_worker.bind_to_random_port("tcp://127.0.0.1")
+    port_in = from_worker.bind_to_random_port("tcp://127.0.0.1")
+    worker = WorkerLoop(f"tcp://127.0.0.1:{port_out}", f"tcp://127.0.0.1:{port_in}", context=ctx, name="w")
+    spec = MaskSpec(family="octanary", count=K, shape=SHAPE, seed=3, sha256=mask_digest(masks))
+    engine = IncrementalEngine(masks, mode="accumulate", iterations_per_update=60)
+    total = np.zeros((K,) + SHAPE)
+    try:
+        for p, frame_set in enumerate(sets):
+            total += frame_set
+            mean = (total / (p + 1)).astype(np.float32)
+            hdr = FrameSetHeader(run_id="r", pass_index=p, shape=(K,) + SHAPE, exposure_s=1.0, estimate_scale=1.0,
+                                 masks=spec, options=ReconOptions(iterations_per_update=60), data_passes=p + 1)
+            to_worker.send_multipart([b"frameset", hdr.model_dump_json().encode(), mean.tobytes()])
+            assert worker.pull.poll(5000)
+            assert worker.handle(worker.pull.recv_multipart())
+            assert from_worker.poll(5000)
+            _, head, payload = from_worker.recv_multipart()
+            got = EstimateHeader.model_validate_json(head)
+            estimate = np.frombuffer(payload, np.complex64).reshape(SHAPE)
+            expected = engine.update(frame_set)
+            assert worker._engine.method == update_method("auto", K, warm_start=p > 0, accumulating=True)
+            assert got.passes_used == expected.passes_used == p + 1
+            assert got.iterations == expected.iterations
+            # the engine averages in float64, the daemon sends a float32 mean: agreement to float32 precision
+            assert relative_error(expected.estimate, estimate) < 1e-4
+            assert got.error_estimate == pytest.approx(expected.error_estimate, rel=1e-5)
+    finally:
+        worker.pull.close(0)
+        worker.push.close(0)
+        to_worker.close(0)
+        from_worker.close(0)
+        ctx.term()
+
+
+def test_update_method_choices():
+    from maskrun.reconstruct.incremental import update_method
+
+    assert update_method("auto", 8, warm_start=False, accumulating=True) == "hybrid"
+    assert update_method("auto", 8, warm_start=True, accumulating=True) == "er"
+    assert update_method("auto", 8, warm_start=True, accumulating=False) == "hybrid"
+    assert update_method("auto", 4, warm_start=True, accumulating=True) == "raar"
+    assert update_method("wf", 8, warm_start=True, accumulating=True) == "wf"
