@@ -8,6 +8,10 @@ queue is full, the frame set is skipped for live reconstruction (it is in the
 run file anyway, and ``maskrun reconstruct`` can process it later) and the
 caller is told.
 
+``LiveData`` is the daemon's copy of the data (below). A resumed run preloads it
+with the frame sets already in the file (``ReconLink.preload``), so the live
+estimate after a resume uses every set, not only the new ones.
+
 Several workers (``maskrun worker --connect ADDRESS`` on other machines, with
 ``worker_address`` fixed; see ``remote_workers``) share the frame sets: the
 PUSH socket hands each frame set to one worker. So that the estimate does not
@@ -30,11 +34,54 @@ import sys
 import time
 import uuid
 
+from collections.abc import Iterable
+
 import numpy as np
 import zmq
 
 from .config import ReconstructionConfig
 from .worker import MAX_MESSAGE_BYTES, EstimateHeader, FrameSetHeader, MaskSpec, ReconOptions, mask_digest
+
+
+class LiveData:
+    """The frame sets a live estimate uses: accumulate mode keeps the float64 running sum of all
+    sets, follow mode the last ``window`` sets. ``add`` folds in one set and returns (their mean
+    as float32, how many sets it averages)."""
+
+    def __init__(self, mode: str, window: int):
+        self.mode = mode
+        self.sum: np.ndarray | None = None
+        self.count = 0
+        self.recent: collections.deque = collections.deque(maxlen=window)
+
+    def add(self, intensities: np.ndarray) -> tuple[np.ndarray, int]:
+        self._fold(intensities)
+        if self.mode == "accumulate":
+            return (self.sum / self.count).astype(np.float32), self.count
+        acc = np.zeros(intensities.shape, dtype=np.float64)
+        for y in self.recent:
+            acc += y
+        return (acc / len(self.recent)).astype(np.float32), len(self.recent)
+
+    def _fold(self, intensities: np.ndarray) -> None:
+        if self.mode == "accumulate":
+            if self.sum is None:
+                self.sum = np.zeros(intensities.shape, dtype=np.float64)
+            self.sum += intensities
+            self.count += 1
+        else:
+            self.recent.append(np.array(intensities, dtype=np.float32))
+
+    def preload(self, frame_sets: Iterable[np.ndarray]) -> int:
+        """Fold in earlier frame sets without sending anything; returns how many sets are held."""
+        for y in frame_sets:
+            self._fold(y)
+        return self.held
+
+    @property
+    def held(self) -> int:
+        """Frame sets the next mean will average before the new one (accumulate: all; follow: the window)."""
+        return self.count if self.mode == "accumulate" else len(self.recent)
 
 
 class ReconLink:
@@ -65,9 +112,7 @@ class ReconLink:
             self._auth = start_link_authenticator(context, server_keys, [local_keys.public])
         self.reorder_timeout_s = reorder_timeout_s
         self._held: list = []  # (arrival time, EstimateHeader, estimate) waiting for an earlier pass
-        self._acc_sum: np.ndarray | None = None
-        self._acc_n = 0
-        self._recent: collections.deque = collections.deque(maxlen=options.window)
+        self.live = LiveData(options.mode, options.window)
         self.ctx = context
         self.masks = np.ascontiguousarray(masks, dtype=np.complex64)
         self.mask_spec = MaskSpec(**mask_spec, sha256=mask_digest(masks))
@@ -147,27 +192,19 @@ class ReconLink:
         self.outstanding.clear()
         self._pending.clear()
         self._held.clear()
-        self._acc_sum, self._acc_n = None, 0
-        self._recent.clear()
+        self.live = LiveData(self.options.mode, self.options.window)
 
-    def _daemon_side_data(self, intensities: np.ndarray) -> tuple[np.ndarray, int]:
-        """Fold one frame set into the daemon's data; (mean to send, frame sets it averages)."""
-        if self.options.mode == "accumulate":
-            if self._acc_sum is None:
-                self._acc_sum = np.zeros(intensities.shape, dtype=np.float64)
-            self._acc_sum += intensities
-            self._acc_n += 1
-            return (self._acc_sum / self._acc_n).astype(np.float32), self._acc_n
-        self._recent.append(intensities.copy())
-        acc = np.zeros(intensities.shape, dtype=np.float64)
-        for y in self._recent:
-            acc += y
-        return (acc / len(self._recent)).astype(np.float32), len(self._recent)
+    def preload(self, live: LiveData) -> None:
+        """Use ``live`` (e.g. the frame sets already in a resumed run file) as the data so far."""
+        if live.mode != self.options.mode or live.recent.maxlen != self.options.window:
+            raise ValueError(f"preloaded data are for mode {live.mode!r} window {live.recent.maxlen}, "
+                             f"this link runs {self.options.mode!r} window {self.options.window}")
+        self.live = live
 
     def submit(self, pass_index: int, intensities: np.ndarray, exposure_s: float, quantum_efficiency: float) -> bool:
         """Queue one frame set (K, H, W) float32 detected photons, grid orientation. False if skipped."""
         intensities = np.ascontiguousarray(intensities, dtype=np.float32)
-        intensities, data_passes = self._daemon_side_data(intensities)
+        intensities, data_passes = self.live.add(intensities)
         hdr = FrameSetHeader(
             run_id=self.run_id,
             pass_index=pass_index,

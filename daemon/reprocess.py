@@ -187,6 +187,29 @@ def frame_set_intensities(frames: np.ndarray, dark_dn, response: Response, flat:
     return np.maximum(out, 0.0)
 
 
+def live_frame_sets(run_path: str | Path, last: int | None = None):
+    """The complete frame sets of a run file as the sequencer hands them to live reconstruction,
+    oldest first (only the last ``last`` when given): (K, H, W) float32 detected photons, grid
+    orientation, clamped at 0, every frame scaled to its set's shortest exposure. Dark level: the
+    mean of the dark frames in the file (as for reprocessing). A generator: the file is open
+    while it is being consumed."""
+    with RunFile(str(run_path)) as rf:
+        response = response_for_run(rf, f"{run_path}:/entry@config_toml")
+        dark_dn = mean_dark_dn(rf.darks(), response.offset_dn)
+        flat = rf.flat_field()
+        exposure_s = rf.frame_info()["exposure_s"]
+        sets = rf.complete_sets()
+        if last is not None:
+            sets = sets[-last:] if last > 0 else []
+        for s in sets:
+            y = frame_set_intensities(rf.frames(list(s.rows)), dark_dn, response, flat)
+            set_exposures = exposure_s[s.rows].astype(np.float64)
+            ref = float(set_exposures.min())
+            if np.any(set_exposures != ref):
+                y *= (ref / set_exposures).astype(np.float32)[:, None, None]
+            yield y
+
+
 @dataclass
 class _RunContext:
     masks: np.ndarray

@@ -220,6 +220,8 @@ class Progress:
     message: str = ""
 
 
+STOP_ESTIMATE_WAIT_S = 5.0  # after a stop or fault, wait at most this long for estimates of sets already taken
+
 _DEVICE_ATTR = {"camera": "camera", "modulator": "modulator", "safety": "safety"}
 
 
@@ -359,6 +361,7 @@ class Sequencer:
         t0 = time.monotonic()
         message = ""
         final = State.finished
+        late_estimates = False  # set when a stop or fault ends the run: collect estimates already on their way
         cam = self.bench.camera
         try:
             self._set_state(State.preparing)
@@ -394,17 +397,27 @@ class Sequencer:
         except DoseLimitStop as exc:
             final, message = State.stopped, str(exc)
             self._fault_quietly("dose_limit", message, "error")
+            late_estimates = True
         except RunAborted as exc:
             final, message = State.stopped, str(exc)
+            late_estimates = True
         except InterlockOpen as exc:
             final, message = State.fault, str(exc)
+            late_estimates = True
         except DeviceError as exc:
             final, message = State.fault, str(exc)
+            late_estimates = True
         except Exception as exc:
             final, message = State.fault, f"{type(exc).__name__}: {exc}"
             raise
         finally:
             self._safe_state()
+            if late_estimates:
+                # shutter closed: keep the estimates of frame sets already taken (bounded wait; never on a disk fault)
+                try:
+                    self._collect_estimates(timeout_s=STOP_ESTIMATE_WAIT_S, drain=True)
+                except (StoreError, OSError):  # the estimates are a convenience; the frames are already safe
+                    pass
             in_file = self.plan.first_pass + self.passes_complete
             try:
                 if final == State.finished:

@@ -19,7 +19,7 @@ import zmq
 
 from .bench import Bench
 from .disk import MB, DiskPlan, expected_run_bytes, frame_itemsize, plan_disk
-from .recon_link import ReconLink
+from .recon_link import LiveData, ReconLink
 from .safety import Acknowledgement
 from .sequencer import Progress, RunControl, RunPlan, RunSummary, Sequencer
 from .store import RunHeader, RunStore
@@ -77,6 +77,15 @@ def plan_run_disk(bench: Bench, plan: RunPlan) -> DiskPlan:
                      int(bench.config.run.min_free_disk_mb * MB))
 
 
+def _earlier_live_data(path, rcfg) -> LiveData:
+    """The frame sets already in a run file that a resumed run's live estimate starts from."""
+    from .reprocess import live_frame_sets
+
+    live = LiveData(rcfg.mode, rcfg.window)
+    live.preload(live_frame_sets(path, last=None if rcfg.mode == "accumulate" else rcfg.window))
+    return live
+
+
 def execute_run(
     bench: Bench,
     plan: RunPlan,
@@ -100,11 +109,14 @@ def execute_run(
     plan's first_pass / first_set_index say where to continue. ``extra_events`` are (kind, message,
     level) logged after the acknowledgement (e.g. the repair report)."""
     disk = plan_run_disk(bench, plan)  # DiskSpaceError: nothing written yet
+    own_recon = recon is None
+    earlier = None
+    if append and own_recon and bench.config.reconstruction.enabled:
+        earlier = _earlier_live_data(plan.output_path, bench.config.reconstruction)  # read before reopening
     if append:
         store = RunStore.reopen(plan.output_path)
     else:
         store = RunStore.create(plan.output_path, run_header(bench, ack, run_name, plan))
-    own_recon = recon is None
     try:
         if append:
             store.log("resume", f"resumed at pass {plan.first_pass} (set {plan.first_set_index}); {resume_note}".rstrip("; "),
@@ -118,6 +130,10 @@ def execute_run(
             store.log("disk_warning", disk.warning, "warning")
         if own_recon:
             recon = make_recon_link(bench, zmq_context)
+            if recon is not None and earlier is not None and earlier.held:
+                recon.preload(earlier)
+                store.log("recon_preload", f"live reconstruction continues from the {earlier.held} frame set(s) "
+                          "already in the file", "info")
         else:
             recon.new_run()
         seq = Sequencer(bench, store, publisher, recon, plan, control, observer)

@@ -148,3 +148,42 @@ def test_time_series_repeats_the_set_every_interval_with_the_shutter_closed_betw
         assert kinds.count("interval_wait") == 2
         assert kinds.count("shutter") == 3  # closed during each wait, opened again for each set
         assert rf.run_plan == {"passes": 3, "dark_frames": 1, "exposure_s": 0.002, "interval_s": 0.4}
+
+
+def test_resumed_run_live_estimate_continues_from_the_sets_already_in_the_file(tmp_path):
+    """Stop a run with live reconstruction after 2 of 5 frame sets, resume it: the first estimate after
+    the resume averages 3 sets, and every live estimate used the same detected photons as an offline
+    cumulative reconstruction of the finished file (so the preloaded sets were converted like live ones)."""
+    from maskrun.daemon.foreground import resume_foreground
+    from maskrun.daemon.reprocess import InProcessRunner, ReprocessOptions, read_results, reprocess_runs
+
+    from benchcfg import small_bench_text
+
+    masks = 4
+    text = small_bench_text(masks=masks, passes=5, darks=1, extra_camera="real_time = false", recon_iterations=20)
+
+    def observer(p, bench, control):
+        if p.frames_done == 2 * masks:
+            control.request_stop("stopped by the test after two frame sets")
+
+    summary, _ = run_bench(tmp_path, text, observer=observer)
+    assert summary.state == State.stopped and summary.passes_complete == 2
+    path = summary.output_path
+    with RunFile(path) as rf:  # a stop still keeps the estimates of the sets already taken
+        assert rf.estimate_info()["passes_used"].tolist() == [1, 2]
+    resumed = resume_foreground(path, RunRequest(acknowledge_unattended=True, figure=False),
+                                Console(file=io.StringIO()))
+    assert resumed.state == State.finished, resumed.message
+    with RunFile(path) as rf:
+        live = rf.estimate_info()
+        preload = [e["message"] for e in rf.events() if e["kind"] == "recon_preload"]
+    assert preload and "2 frame set(s)" in preload[0]
+    assert sorted(live["passes_used"].tolist()) == [1, 2, 3, 4, 5]
+    (tmp_path / "offline").mkdir()
+    (rep,) = reprocess_runs([path], ReprocessOptions(iterations=5, mode="cumulative"), InProcessRunner(),
+                            output_dir=tmp_path / "offline")
+    _, offline, _ = read_results(rep.results_path)
+    for row in offline:
+        (match,) = live[live["pass_index"] == row["pass_index"]]
+        assert match["passes_used"] == row["passes_used"]
+        assert np.isclose(match["photons"], row["photons"], rtol=1e-6), (row["pass_index"], match["photons"], row["photons"])
