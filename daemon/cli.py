@@ -9,6 +9,7 @@ and exit non-zero without a traceback; set MASKRUN_DEBUG=1 to see tracebacks.
 from __future__ import annotations
 
 import argparse
+import errno
 import importlib
 import os
 import sys
@@ -76,6 +77,12 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         err.print("[bold red]interrupted[/]")
         return 130
+    except OSError as exc:
+        if exc.errno not in (errno.EIO, errno.EPIPE):
+            raise
+        # the terminal went away (closed window, dropped ssh session, closed pipe): the run itself
+        # has already been stopped safely and its file closed; there is no one left to tell
+        return 129
 
 
 if __name__ == "__main__":

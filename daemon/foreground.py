@@ -7,11 +7,11 @@ Order of work, chosen so that bad input costs nothing:
 4. the run file is created (with the acknowledgement), devices opened, the run sequenced;
 5. whatever happens, the shutter is closed, the file flushed and closed, the worker stopped.
 
-Signals: SIGINT / SIGTERM ask the run to stop (the frame in progress is finished or its
-wait abandoned, the shutter closed, the file flushed and closed, and the summary says so);
-SIGUSR1 resumes a paused run (``kill -USR1 <pid>``, printed when the run pauses). A paused
-foreground run that nobody resumes stops by itself after ``[recovery] pause_timeout_s`` and
-can be continued later with ``maskrun resume RUN.h5``.
+Signals: SIGINT / SIGTERM / SIGHUP (the terminal closed) ask the run to stop (the frame in
+progress is finished or its wait abandoned, the shutter closed, the file flushed and closed,
+and the summary says so); SIGUSR1 resumes a paused run (``kill -USR1 <pid>``, printed when the
+run pauses). A paused foreground run that nobody resumes stops by itself after
+``[recovery] pause_timeout_s`` and can be continued later with ``maskrun resume RUN.h5``.
 
 ``resume_foreground(path, ...)`` continues a stopped or crashed run from its last complete
 frame set, with the config stored in the file (see daemon.recovery).
@@ -161,7 +161,7 @@ def _run(cfg, req, bench, plan: RunPlan, ack, console: Console, *, append: bool 
         control.resume()
 
     try:
-        for sig in (signal.SIGINT, signal.SIGTERM):
+        for sig in (signal.SIGINT, signal.SIGTERM, signal.SIGHUP):  # SIGHUP: the terminal closed
             old_handlers[sig] = signal.signal(sig, _on_signal)
         old_handlers[signal.SIGUSR1] = signal.signal(signal.SIGUSR1, _on_resume)
         pub = Publisher(ctx, cfg.stream.publish_address, hwm=cfg.stream.preview_hwm)

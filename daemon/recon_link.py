@@ -184,6 +184,9 @@ class ReconLink:
             ],
             env=env,
             stdin=subprocess.DEVNULL,
+            # its own session: Ctrl-C or a closed terminal stops the run, not the worker, so estimates
+            # of the sets already taken still arrive; it exits on 'stop' or when the daemon is gone
+            start_new_session=True,
         )
 
     def new_run(self) -> None:

@@ -621,15 +621,27 @@ class Service:
 
 def serve(cfg: BenchConfig, *, control_address: str | None = None, publish_address: str | None = None,
           ready_file: str | None = None, log: Callable[[str], None] = print) -> int:
-    """Run the service until a shutdown request or SIGINT/SIGTERM. Returns an exit code."""
+    """Run the service until a shutdown request or SIGINT/SIGTERM/SIGHUP. Returns an exit code.
+
+    SIGHUP (the terminal closed, e.g. a dropped ssh session) shuts down safely like SIGTERM: a run
+    in progress is stopped, the shutter closed and the file closed. Messages to a terminal that is
+    gone are dropped rather than raised."""
     import signal
+
+    printer = log
+
+    def log(message: str) -> None:  # noqa: F811 - the caller's log, made safe for a closed terminal
+        try:
+            printer(message)
+        except OSError:
+            pass
 
     svc = Service(cfg, control_address=control_address, publish_address=publish_address, log=log)
 
     def on_signal(signum, _frame):
         svc.request_shutdown()
 
-    old = {s: signal.signal(s, on_signal) for s in (signal.SIGINT, signal.SIGTERM)}
+    old = {s: signal.signal(s, on_signal) for s in (signal.SIGINT, signal.SIGTERM, signal.SIGHUP)}
 
     def ready(info: dict) -> None:
         log(f"maskrun service ready: control {info['control_address']}, stream {info['publish_address']}"

@@ -429,3 +429,55 @@ def test_sigint_to_a_foreground_run_process_stops_it_cleanly(tmp_path):
     with RunFile(run) as rf:
         assert rf.last_end()["message"].startswith("run stopped: interrupted by SIGINT")
         assert rf.frame_count >= 1
+
+
+def test_closing_the_terminal_of_a_foreground_run_stops_it_cleanly(tmp_path):
+    """`maskrun run` on a real pseudo-terminal; the terminal is closed (the kernel sends SIGHUP, as for
+    a closed window or a dropped ssh session): the run stops, the shutter is closed, the file is closed."""
+    import fcntl
+    import subprocess
+    import sys
+    import termios
+    from pathlib import Path
+
+    import h5py
+
+    cfg_path = tmp_path / "b.toml"
+    cfg_path.write_text(bench_text(passes=500))
+    out = tmp_path / "out"
+    master, slave = os.openpty()
+
+    def controlling_terminal():  # a new session whose controlling terminal is the pty
+        os.setsid()
+        fcntl.ioctl(0, termios.TIOCSCTTY, 0)
+
+    proc = subprocess.Popen([str(Path(sys.executable).parent / "maskrun"), "run", str(cfg_path),
+                             "--acknowledge-safety", "--output-dir", str(out), "--no-figure"],
+                            stdin=slave, stdout=slave, stderr=slave, preexec_fn=controlling_terminal,
+                            env={**os.environ, "COLUMNS": "200"})
+    os.close(slave)
+    seen = []
+
+    def drain():  # a terminal that is read, so that the run never blocks on its output
+        try:
+            while chunk := os.read(master, 65536):
+                seen.append(chunk)
+        except OSError:
+            pass
+
+    threading.Thread(target=drain, daemon=True).start()
+    deadline = time.monotonic() + 30
+    while time.monotonic() < deadline:
+        logs = list(out.glob("*.log")) if out.exists() else []
+        if logs and " shutter " in logs[0].read_text():
+            break
+        time.sleep(0.02)
+    time.sleep(0.3)
+    os.close(master)  # hang up
+    assert proc.wait(timeout=30) != 0
+    run = next(out.glob("*.h5"))
+    with h5py.File(run, "r+"):  # closed cleanly: no repair needed
+        pass
+    with RunFile(run) as rf:
+        assert rf.last_end()["message"].startswith("run stopped: interrupted by SIGHUP")
+        assert rf.frame_count >= 1

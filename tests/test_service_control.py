@@ -208,3 +208,31 @@ def test_start_is_refused_up_front_when_the_disk_cannot_hold_the_run(tmp_path):
         assert not (tmp_path / "runs").exists() or not any((tmp_path / "runs").iterdir())
     finally:
         assert d.stop() == 0, d.output()
+
+
+def test_sighup_shuts_the_service_down_safely_mid_run(tmp_path):
+    """A hang-up (the terminal that started `maskrun serve` closed) stops the run in progress, closes
+    the shutter and the file, and ends the service with exit code 0."""
+    import signal
+
+    import h5py
+
+    d = Daemon(tmp_path / "svc-hup", service_config_text(passes=500, exposure_s=0.002)).wait_ready()
+    try:
+        with ServiceClient(d.control, timeout_s=10) as c:
+            c.acknowledge("test operator")
+            c.start(passes=500, name="hup")
+            c.wait_state("acquiring", timeout_s=20)
+            deadline = time.monotonic() + 20
+            while c.status()["run"]["frames_done"] < 3 and time.monotonic() < deadline:
+                time.sleep(0.05)
+        d.proc.send_signal(signal.SIGHUP)
+        assert d.proc.wait(timeout=30) == 0, d.output()
+        assert "shutter closed" in d.output()
+    finally:
+        d.stop()
+    (run,) = list((d.folder / "runs").glob("hup-*.h5"))
+    with h5py.File(run, "r+"):  # closed cleanly: no repair needed
+        pass
+    with RunFile(run) as rf:
+        assert "stopped" in rf.last_end()["message"] and rf.frame_count >= 3
