@@ -152,6 +152,10 @@ def build_bench(cfg: BenchConfig) -> Bench:
     profile, flat = _load_profile(cfg)
     if profile is not None:
         qe = profile.quantum_efficiency or cfg.response.quantum_efficiency
+        if qe is None:
+            raise ConfigError(cfg.source_path, [("response.quantum_efficiency",
+                              f"the camera profile {cfg.response.profile} has no quantum efficiency (the irradiance "
+                              "was not known when it was measured); give quantum_efficiency here")])
         response = Response(profile.gain_dn_per_e, profile.offset_dn, qe)
     else:
         response = Response(cfg.response.gain_dn_per_e, cfg.response.offset_dn, cfg.response.quantum_efficiency)

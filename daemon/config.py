@@ -100,10 +100,20 @@ class CameraConfig(DeviceConfig):
 class ResponseConfig(_Table):
     """Conversion of camera counts to photons (from a calibration profile or the data sheet)."""
 
-    gain_dn_per_e: float = Field(gt=0)
+    gain_dn_per_e: float | None = Field(None, gt=0, description="data-sheet gain; required without a profile")
     offset_dn: float = Field(0.0, ge=0)
-    quantum_efficiency: float = Field(gt=0, le=1)
+    quantum_efficiency: float | None = Field(
+        None, gt=0, le=1, description="data-sheet QE; required without a profile, or when the profile has none")
     profile: str | None = Field(None, description="camera profile file from 'maskrun calibrate'; overrides the values above")
+
+    @model_validator(mode="after")
+    def _values_or_profile(self):
+        if self.profile is None:
+            missing = [k for k in ("gain_dn_per_e", "quantum_efficiency") if getattr(self, k) is None]
+            if missing:
+                raise ValueError(f"give {' and '.join(missing)} (data sheet), or profile = '<camera profile from "
+                                 "maskrun calibrate>'")
+        return self
 
 
 class ChecksConfig(_Table):

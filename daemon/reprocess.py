@@ -151,6 +151,9 @@ def response_from_config_text(config_toml: str, source: str) -> Response:
 
     cfg = parse_config(config_toml, source)
     r = cfg.response
+    if r.gain_dn_per_e is None or r.quantum_efficiency is None:
+        raise ReprocessError(f"{source}: the run file records neither the camera response it used nor data-sheet "
+                             "values in its config (only a profile name); this file cannot be converted to photons")
     return Response(r.gain_dn_per_e, r.offset_dn, r.quantum_efficiency)
 
 

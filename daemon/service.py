@@ -149,6 +149,7 @@ class Service:
         """Build and open the bench (shutter closed), the sockets and the reconstruction worker."""
         cfg = self.cfg
         self.bench = build_bench(cfg)
+        self.dark_dn = self.bench.response.offset_dn  # the profile's offset, until dark frames are taken
         try:
             self.bench.open()
             self.bench.safety.close_shutter()

@@ -85,3 +85,16 @@ def test_good_file_round_trips_from_disk(tmp_path):
     cfg = load_config(p)
     assert cfg.source_path == str(p)
     assert cfg.source_text == demo_config_text()
+
+
+def test_response_needs_data_sheet_values_or_a_profile():
+    text = demo_config_text()
+    no_gain = _with(text, "[response]                  # counts -> photons; from the data sheet until 'maskrun calibrate' gives a profile\ngain_dn_per_e = 0.3\n",
+                    "[response]\n")
+    with pytest.raises(ConfigError) as exc:
+        parse_config(no_gain, "bench.toml")
+    assert "bench.toml: response: give gain_dn_per_e (data sheet), or profile" in str(exc.value)
+    # a profile alone is enough (what 'maskrun calibrate' tells the user to write)
+    profile_only = _with(no_gain, "offset_dn = 100.0\nquantum_efficiency = 0.6\n", 'profile = "cam.json"\n')
+    cfg = parse_config(profile_only, "bench.toml")
+    assert cfg.response.gain_dn_per_e is None and cfg.response.profile == "cam.json"

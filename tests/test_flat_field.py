@@ -205,3 +205,22 @@ def test_a_bad_flat_file_is_refused_with_one_line(calibrated, tmp_path, problem)
     lines = [ln for ln in res.stderr.splitlines() if ln.strip()]
     assert len(lines) == 1 and expect in lines[0] and "flat-field file" in lines[0], res.stderr
     assert not (tmp_path / "out").exists() or not any((tmp_path / "out").glob("*.h5"))
+
+
+def test_a_profile_alone_in_the_response_table_is_enough(calibrated):
+    """What `maskrun calibrate` tells the user to write: [response] profile = ..., no data-sheet values."""
+    from maskrun.daemon.bench import build_bench
+
+    text = small_bench_text(grid=GRID, sensor=SENSOR, prnu_fraction=PRNU)
+    head = text.index("\n[response]")
+    block_end = text.index("\n[", head + 1)
+    text = text[:head] + f'\n[response]\nprofile = "{calibrated / "profile.json"}"\n' + text[block_end:]
+    assert "quantum_efficiency" not in text[head:text.index("\n[", head + 1)]
+    bench = build_bench(parse_config(text, str(calibrated / "profile-only.toml")))
+    try:
+        prof = json.loads((calibrated / "profile.json").read_text())
+        assert bench.response.gain_dn_per_e == pytest.approx(prof["gain_dn_per_e"])
+        assert bench.response.quantum_efficiency == pytest.approx(prof["quantum_efficiency"])
+        assert bench.flat_field is not None
+    finally:
+        bench.close()
