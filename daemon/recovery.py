@@ -229,8 +229,6 @@ def _writer_alive(events: list[dict]) -> int | None:
 
 def resume_point(path: str | Path) -> ResumePoint:
     """Where to continue a stopped or crashed run (reads the file, never writes it)."""
-    import json
-
     from .runfile import RunFile
 
     path = Path(path)

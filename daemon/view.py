@@ -211,8 +211,8 @@ def _build_window_class():
             self.hist_plot.showGrid(x=True, y=True, alpha=0.3)
             self.hist_plot.setMenuEnabled(False)
             self.hist_plot.hideButtons()
-            legend = self.hist_plot.addLegend(offset=(12, -8), labelTextSize="9pt", brush=(255, 255, 255, 210),
-                                              pen=(180, 180, 180), verSpacing=-6)
+            self.hist_plot.addLegend(offset=(12, -8), labelTextSize="9pt", brush=(255, 255, 255, 210),
+                                    pen=(180, 180, 180), verSpacing=-6)
             dash = {"-": QtCore.Qt.SolidLine, "--": QtCore.Qt.DashLine, ":": QtCore.Qt.DotLine}
             symbol = {"o": "o", "s": "s", "^": "t1"}
             self.curves = {}

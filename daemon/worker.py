@@ -20,11 +20,9 @@ from __future__ import annotations
 
 import argparse
 import hashlib
-import json
 import os
 import sys
 import time
-from typing import Any
 
 import numpy as np
 import zmq

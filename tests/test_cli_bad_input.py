@@ -4,9 +4,6 @@ import os
 import shutil
 import subprocess
 import sys
-from pathlib import Path
-
-import pytest
 
 from benchcfg import small_bench_text
 

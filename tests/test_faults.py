@@ -317,7 +317,7 @@ def test_cumulative_dose_limit_stops_before_it_is_passed(tmp_path):
     probe, _ = run_bench(tmp_path / "probe", bench_text(passes=1))
     per_frame = probe.photons_per_frame_mean
     limit = 5.5 * per_frame
-    summary, _ = run_bench(tmp_path, bench_text(extra=f"\n[checks]\n" if False else "").replace(
+    summary, _ = run_bench(tmp_path, bench_text().replace(
         "saturation_action = \"flag\"", f"saturation_action = \"flag\"\nmax_dose_photons = {limit:.6g}"))
     assert summary.state == State.stopped and "dose limit" in summary.message
     with RunFile(summary.output_path) as rf:
@@ -398,13 +398,34 @@ def test_foreground_signals_sigterm_stops_and_sigusr1_resumes(tmp_path):
     assert signal.getsignal(signal.SIGTERM) is not None  # handlers restored
 
 
+def _wait_until_the_shutter_opened(out, extra_s: float = 0.3) -> None:
+    """Wait for a run in another process to log its shutter opening in ``out``, then a little more."""
+    deadline = time.monotonic() + 30
+    while time.monotonic() < deadline:
+        logs = list(out.glob("*.log")) if out.exists() else []
+        if logs and " shutter " in logs[0].read_text():
+            break
+        time.sleep(0.02)
+    time.sleep(extra_s)
+
+
+def _assert_stopped_cleanly_by(out, signal_name: str) -> None:
+    """The run file in ``out`` was closed cleanly (opens for writing without repair) and says who stopped it."""
+    import h5py
+
+    run = next(out.glob("*.h5"))
+    with h5py.File(run, "r+"):
+        pass
+    with RunFile(run) as rf:
+        assert rf.last_end()["message"].startswith(f"run stopped: interrupted by {signal_name}")
+        assert rf.frame_count >= 1
+
+
 def test_sigint_to_a_foreground_run_process_stops_it_cleanly(tmp_path):
     """`maskrun run` in its own process: SIGINT -> frame finished, shutter closed, file closed, and it says so."""
     import subprocess
     import sys
     from pathlib import Path
-
-    import h5py
 
     cfg_path = tmp_path / "b.toml"
     cfg_path.write_text(bench_text(passes=500))
@@ -412,23 +433,12 @@ def test_sigint_to_a_foreground_run_process_stops_it_cleanly(tmp_path):
     proc = subprocess.Popen([str(Path(sys.executable).parent / "maskrun"), "run", str(cfg_path), "--acknowledge-safety",
                              "--output-dir", str(out), "--no-figure"], stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
                             text=True, env={**os.environ, "COLUMNS": "250"})
-    deadline = time.monotonic() + 30
-    while time.monotonic() < deadline:
-        logs = list(out.glob("*.log")) if out.exists() else []
-        if logs and " shutter " in logs[0].read_text():
-            break
-        time.sleep(0.02)
-    time.sleep(0.3)
+    _wait_until_the_shutter_opened(out)
     proc.send_signal(signal.SIGINT)
     text, _ = proc.communicate(timeout=30)
     assert proc.returncode == 1, text
     assert "interrupted by SIGINT" in text and "Shutter closed" in text and "maskrun resume" in text
-    run = next(out.glob("*.h5"))
-    with h5py.File(run, "r+"):  # closed cleanly: no repair needed
-        pass
-    with RunFile(run) as rf:
-        assert rf.last_end()["message"].startswith("run stopped: interrupted by SIGINT")
-        assert rf.frame_count >= 1
+    _assert_stopped_cleanly_by(out, "SIGINT")
 
 
 def test_closing_the_terminal_of_a_foreground_run_stops_it_cleanly(tmp_path):
@@ -439,8 +449,6 @@ def test_closing_the_terminal_of_a_foreground_run_stops_it_cleanly(tmp_path):
     import sys
     import termios
     from pathlib import Path
-
-    import h5py
 
     cfg_path = tmp_path / "b.toml"
     cfg_path.write_text(bench_text(passes=500))
@@ -466,18 +474,7 @@ def test_closing_the_terminal_of_a_foreground_run_stops_it_cleanly(tmp_path):
             pass
 
     threading.Thread(target=drain, daemon=True).start()
-    deadline = time.monotonic() + 30
-    while time.monotonic() < deadline:
-        logs = list(out.glob("*.log")) if out.exists() else []
-        if logs and " shutter " in logs[0].read_text():
-            break
-        time.sleep(0.02)
-    time.sleep(0.3)
+    _wait_until_the_shutter_opened(out)
     os.close(master)  # hang up
     assert proc.wait(timeout=30) != 0
-    run = next(out.glob("*.h5"))
-    with h5py.File(run, "r+"):  # closed cleanly: no repair needed
-        pass
-    with RunFile(run) as rf:
-        assert rf.last_end()["message"].startswith("run stopped: interrupted by SIGHUP")
-        assert rf.frame_count >= 1
+    _assert_stopped_cleanly_by(out, "SIGHUP")

@@ -3,7 +3,6 @@ and time-series runs."""
 
 import hashlib
 import io
-import os
 import signal
 import subprocess
 import sys

@@ -10,7 +10,6 @@ opening now and then (an operator thread closes it and resumes). Reports frames 
 
 import json
 import os
-import threading
 import time
 
 import h5py

@@ -1,7 +1,6 @@
 """The run file: layout, crash safety and reading while writing."""
 
 import json
-import os
 import subprocess
 import sys
 import textwrap
