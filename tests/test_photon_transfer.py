@@ -34,8 +34,8 @@ from maskrun.daemon.photon_transfer import (
     step_statistics,
 )
 from maskrun.drivers.base import BenchContext
-from maskrun.drivers.simulated_camera import SimulatedCamera
-from maskrun.drivers.simulated_safety import SimulatedSafetyBox
+from maskrun.simulators.camera import SimulatedCamera
+from maskrun.simulators.safety_box import SimulatedSafetyBox
 from maskrun.simulators.camera_model import CameraNoiseModel
 from maskrun.simulators.optics import SimulatedOptics
 

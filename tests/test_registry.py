@@ -17,9 +17,9 @@ from maskrun.drivers.registry import (
     load_driver,
 )
 from maskrun.drivers.serial_modulator import SerialLineModulator
-from maskrun.drivers.simulated_camera import SimulatedCamera
-from maskrun.drivers.simulated_modulator import SimulatedModulator
-from maskrun.drivers.simulated_safety import SimulatedSafetyBox
+from maskrun.simulators.camera import SimulatedCamera
+from maskrun.simulators.modulator import SimulatedModulator
+from maskrun.simulators.safety_box import SimulatedSafetyBox
 
 
 @pytest.fixture
@@ -41,8 +41,8 @@ def extra_distribution(tmp_path, monkeypatch):
     """))
     (tmp_path / "maskrun_regtest_mod.py").write_text(textwrap.dedent('''
         from maskrun.drivers import Camera
-        from maskrun.drivers.simulated_camera import SimulatedCamera
-        from maskrun.drivers.simulated_modulator import SimulatedModulator
+        from maskrun.simulators.camera import SimulatedCamera
+        from maskrun.simulators.modulator import SimulatedModulator
 
         class ExtraCamera(SimulatedCamera):
             """A third-party camera for the registry test.

@@ -10,8 +10,8 @@ from hypothesis import given, settings as hsettings
 from hypothesis import strategies as st
 
 from maskrun.drivers import BenchContext, DeviceDisconnected, DeviceFault, DeviceMisconfigured, DeviceTimeout
-from maskrun.drivers.simulated_camera import SimulatedCamera
-from maskrun.drivers.simulated_modulator import SimulatedModulator
+from maskrun.simulators.camera import SimulatedCamera
+from maskrun.simulators.modulator import SimulatedModulator
 from maskrun.simulators.optics import SimulatedOptics
 
 

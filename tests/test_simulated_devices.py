@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 
 from maskrun.drivers import BenchContext, DeviceDisconnected, DeviceFault, DeviceMisconfigured
-from maskrun.drivers.simulated_modulator import SimulatedModulator
-from maskrun.drivers.simulated_safety import SimulatedSafetyBox
+from maskrun.simulators.modulator import SimulatedModulator
+from maskrun.simulators.safety_box import SimulatedSafetyBox
 from maskrun.simulators.optics import SimulatedOptics
 
 

@@ -15,8 +15,8 @@ import time
 import numpy as np
 from pydantic import Field
 
-from .base import DriverSettings, Modulator
-from .errors import DeviceDisconnected, DeviceMisconfigured
+from maskrun.drivers.base import DriverSettings, Modulator
+from maskrun.drivers.errors import DeviceDisconnected, DeviceMisconfigured
 
 __all__ = ["SimulatedModulator"]
 

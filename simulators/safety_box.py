@@ -14,8 +14,8 @@ from types import SimpleNamespace
 
 from pydantic import Field
 
-from .base import DriverSettings, SafetyBox
-from .errors import DeviceDisconnected, DeviceFault
+from maskrun.drivers.base import DriverSettings, SafetyBox
+from maskrun.drivers.errors import DeviceDisconnected, DeviceFault
 
 __all__ = ["SimulatedSafetyBox"]
 

@@ -45,10 +45,10 @@ from typing import Literal
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
-from maskrun.simulators.camera_model import CameraNoiseModel
+from .camera_model import CameraNoiseModel
 
-from .base import Camera, DriverSettings, Frame, TriggerMode, checked_roi
-from .errors import DeviceDisconnected, DeviceFault, DeviceMisconfigured, DeviceTimeout
+from maskrun.drivers.base import Camera, DriverSettings, Frame, TriggerMode, checked_roi
+from maskrun.drivers.errors import DeviceDisconnected, DeviceFault, DeviceMisconfigured, DeviceTimeout
 
 __all__ = ["SimulatedCamera", "CameraFault"]
 
