@@ -46,7 +46,9 @@ def _run(client, passes: int, name: str) -> dict:
 def test_stream_messages_carry_schema_dtype_shape_and_sequence_numbers(client, daemon):
     ctx = zmq.Context()
     sub = Subscriber(ctx, daemon.stream, ("frame", "preview", "status"), hwm=10_000)
-    time.sleep(0.3)
+    deadline = time.monotonic() + 20  # subscribed once the periodic status arrives: no frame can be missed
+    while sub.receive(timeout_s=0.5) is None and time.monotonic() < deadline:
+        pass
     try:
         client.start(passes=2, name="format", dark_frames=0)
         frames, previews, status = [], [], []
