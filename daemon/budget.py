@@ -56,6 +56,7 @@ __all__ = [
     "plan_photons",
     "predict_relative_error",
     "speckle_peak_to_mean",
+    "dark_frame_advice",
     "DEFAULT_SATURATION_FRACTION",
 ]
 
@@ -502,3 +503,24 @@ def plan_photons(
         achievable_relative_error=achievable,
         warnings=warnings,
     )
+
+
+def dark_frame_advice(dark_frames: int, passes: int, *, accumulating: bool) -> str:
+    """A warning when too few dark frames would limit an accumulated estimate ("" when fine).
+
+    The mean dark frame is subtracted from every frame set alike, so its noise (read noise /
+    sqrt(dark_frames) per pixel) is a fixed pattern that averaging P frame sets does not reduce,
+    while the read noise of the averaged bright frames falls as 1/sqrt(P). With fewer dark frames
+    than sets the dark pattern dominates the read-noise part of the error; in the amplitude domain
+    it weighs most in the dim pixels of the diffraction patterns. Measured on the simulated bench
+    (3 e- read noise, 60 sets, no pixel-response spread): 0.28 % error with 4 dark frames,
+    0.21 % with 60 (photon-count prediction 0.16 %). No warning without dark frames (the
+    configured offset is subtracted, a constant) or for a few sets.
+    """
+    if not accumulating or dark_frames <= 0 or passes < 8 or dark_frames >= passes:
+        return ""
+    return (f"{dark_frames} dark frame(s) for {passes} frame sets: the mean dark frame's noise is subtracted "
+            "from every set alike and does not average away as the sets accumulate; take about "
+            f"{passes} dark frames ([run] dark_frames or --dark-frames; they cost exposures with the shutter "
+            "closed, nothing else) for the full precision of the accumulated estimate")
+

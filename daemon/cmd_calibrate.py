@@ -8,6 +8,7 @@ import time
 from pathlib import Path
 
 from rich.console import Console
+from rich.markup import escape
 from rich.table import Table
 
 from .safety import UNATTENDED_OPTION
@@ -148,7 +149,7 @@ def cmd_calibrate(args) -> int:
 
 
 def cmd_plan(args) -> int:
-    from .budget import PlanError, plan_photons
+    from .budget import PlanError, dark_frame_advice, plan_photons
     from .camera_profile import CameraProfile
     from .cli import CommandError
     from .config import load_config
@@ -186,8 +187,13 @@ def cmd_plan(args) -> int:
     console.print(_table(f"Photon budget for {cfg.grid.shape[0]}x{cfg.grid.shape[1]}, K = {cfg.masks.count}",
                          plan.summary_rows()))
     console.print(f"Photon rate: {rate_note}.")
-    for w in plan.warnings:
-        console.print(f"[yellow]warning:[/] {w}")
+    warnings = list(plan.warnings)
+    darks = dark_frame_advice(cfg.run.dark_frames, plan.passes,
+                              accumulating=cfg.reconstruction.enabled and cfg.reconstruction.mode == "accumulate")
+    if darks:
+        warnings.append(darks)
+    for w in warnings:
+        console.print(f"[yellow]warning:[/] {escape(w)}")
     if not plan.feasible:
         raise CommandError(f"the precision cannot be reached under the dose limit: {plan.infeasible_reason}")
     return 0

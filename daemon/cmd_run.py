@@ -16,6 +16,7 @@ def _add_run_options(p) -> None:
     p.add_argument("--output-dir", help="folder for the run file (default: [run] output_dir)")
     p.add_argument("--passes", type=int, help="number of passes (frame sets), overriding [run] passes")
     p.add_argument("--exposure-s", type=float, help="exposure per frame in seconds, overriding [camera] exposure_s")
+    p.add_argument("--dark-frames", type=int, help="dark frames before the first pass, overriding [run] dark_frames")
     p.add_argument("--name", help="run name (file name prefix)")
     p.add_argument("--no-figure", dest="figure", action="store_false", help="do not write the PNG summary")
 
@@ -40,8 +41,10 @@ def _execute(cfg, args) -> int:
         raise CommandError("--passes must be at least 1")
     if args.exposure_s is not None and not args.exposure_s > 0:
         raise CommandError("--exposure-s must be a positive number of seconds")
+    if args.dark_frames is not None and args.dark_frames < 0:
+        raise CommandError("--dark-frames must be 0 or more")
     req = RunRequest(acknowledge_unattended=args.ack, output_dir=args.output_dir, passes=args.passes,
-                     exposure_s=args.exposure_s, name=args.name)
+                     exposure_s=args.exposure_s, name=args.name, dark_frames=args.dark_frames)
     summary = run_foreground(cfg, req, console)
     print_summary(summary, console)
     if args.figure and Path(summary.output_path).exists():

@@ -28,6 +28,7 @@ from pathlib import Path
 import numpy as np
 import zmq
 from rich.console import Console
+from rich.markup import escape
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
@@ -36,7 +37,7 @@ from .config import BenchConfig
 from .safety import acknowledge
 from .disk import MB, estimate_duration_s, series_passes
 from .sequencer import RunControl, RunPlan, RunSummary
-from .session import execute_run, plan_run_disk
+from .session import dark_advice, execute_run, plan_run_disk
 from .store import StoreError
 from .stream import Publisher
 
@@ -48,6 +49,7 @@ class RunRequest:
     passes: int | None = None
     exposure_s: float | None = None
     name: str | None = None
+    dark_frames: int | None = None
     figure: bool = True
 
 
@@ -72,7 +74,8 @@ def plan_for(cfg: BenchConfig, req: RunRequest, out: Path) -> RunPlan:
     if cfg.run.duration_s is not None and not req.passes:
         passes = series_passes(cfg.run.interval_s, cfg.run.duration_s)
     exposure = req.exposure_s or cfg.camera.exposure_s
-    return RunPlan(passes=passes, dark_frames=cfg.run.dark_frames, exposure_s=exposure, output_path=out,
+    darks = cfg.run.dark_frames if req.dark_frames is None else req.dark_frames
+    return RunPlan(passes=passes, dark_frames=darks, exposure_s=exposure, output_path=out,
                    interval_s=cfg.run.interval_s)
 
 
@@ -93,7 +96,10 @@ def describe_plan(bench, plan: RunPlan) -> list[str]:
              f"exposure {plan.exposure_s:g} s",
              f"Expected: {disk.describe()}; duration about {_hms(duration)}, ETA {eta}"]
     if disk.warning:
-        lines.append(f"[yellow]Warning:[/] {disk.warning}")
+        lines.append(f"[yellow]Warning:[/] {escape(disk.warning)}")
+    darks = dark_advice(bench, plan)
+    if darks:
+        lines.append(f"[yellow]Warning:[/] {escape(darks)}")
     return lines
 
 

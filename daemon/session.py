@@ -19,6 +19,7 @@ import zmq
 
 from .bench import Bench
 from .disk import MB, DiskPlan, expected_run_bytes, frame_itemsize, plan_disk
+from .budget import dark_frame_advice
 from .recon_link import LiveData, ReconLink
 from .safety import Acknowledgement
 from .sequencer import Progress, RunControl, RunPlan, RunSummary, Sequencer
@@ -69,6 +70,13 @@ def expected_bytes(bench: Bench, plan: RunPlan) -> int:
                              estimates=cfg.reconstruction.enabled, truth=bench.truth is not None,
                              flat_field=bench.flat_field is not None)
     return est.bytes_total
+
+
+def dark_advice(bench: Bench, plan: RunPlan) -> str:
+    """The too-few-dark-frames warning for this plan ("" when fine); see budget.dark_frame_advice."""
+    rcfg = bench.config.reconstruction
+    return dark_frame_advice(plan.dark_frames, plan.passes - plan.first_pass,
+                             accumulating=rcfg.enabled and rcfg.mode == "accumulate")
 
 
 def plan_run_disk(bench: Bench, plan: RunPlan) -> DiskPlan:
@@ -128,6 +136,9 @@ def execute_run(
         store.log("disk_plan", disk.describe(), "info")
         if disk.warning:
             store.log("disk_warning", disk.warning, "warning")
+        darks = dark_advice(bench, plan)
+        if darks:
+            store.log("dark_frames_few", darks, "warning")
         if own_recon:
             recon = make_recon_link(bench, zmq_context)
             if recon is not None and earlier is not None and earlier.held:

@@ -67,3 +67,16 @@ def test_plan_reports_photons_and_refuses_an_impossible_dose(tmp_path):
     res = _run("plan", str(limited), "--phase-precision", "0.001")
     assert res.returncode != 0
     assert "cannot be reached under the dose limit" in res.stderr
+
+
+def test_plan_with_many_passes_asks_for_as_many_dark_frames(calibrated, tmp_path):
+    """With a profile the saturation capacity splits a demanding plan into many passes; the config's
+    2 dark frames would then limit the accumulated estimate, and the plan says so."""
+    d, _ = calibrated
+    cfg = tmp_path / "bench.toml"
+    cfg.write_text(small_bench_text(grid=32, sensor=40, darks=2).replace(
+        "quantum_efficiency = 0.6\n\n[modulator]", f'quantum_efficiency = 0.6\nprofile = "{d / "profile.json"}"\n\n[modulator]'))
+    res = _run("plan", str(cfg), "--relative-error", "0.001")
+    assert res.returncode == 0, res.stderr
+    text = " ".join(res.stdout.split())
+    assert "saturation comes first" in text and "2 dark frame(s) for" in text and "[run] dark_frames" in text
