@@ -4,7 +4,6 @@ cannot average away; the plan warns, and the physics is checked on the simulated
 import io
 
 import numpy as np
-import pytest
 from rich.console import Console
 
 from benchcfg import small_bench_text
