@@ -149,18 +149,43 @@ def build_bench(cfg: BenchConfig) -> Bench:
         for fw in firmware:
             fw.stop()
         raise
-    profile, flat = _load_profile(cfg)
-    if profile is not None:
-        qe = profile.quantum_efficiency or cfg.response.quantum_efficiency
-        if qe is None:
-            raise ConfigError(cfg.source_path, [("response.quantum_efficiency",
-                              f"the camera profile {cfg.response.profile} has no quantum efficiency (the irradiance "
-                              "was not known when it was measured); give quantum_efficiency here")])
-        response = Response(profile.gain_dn_per_e, profile.offset_dn, qe)
-    else:
-        response = Response(cfg.response.gain_dn_per_e, cfg.response.offset_dn, cfg.response.quantum_efficiency)
-    return Bench(cfg, masks, camera, modulator, safety, response, context, optics, truth, firmware, profile=profile,
-                 flat_field=flat)
+    try:
+        profile, flat = _load_profile(cfg)
+        if profile is not None:
+            qe = profile.quantum_efficiency or cfg.response.quantum_efficiency
+            if qe is None:
+                raise ConfigError(cfg.source_path, [("response.quantum_efficiency",
+                                  f"the camera profile {cfg.response.profile} has no quantum efficiency (the "
+                                  "irradiance was not known when it was measured); give quantum_efficiency here")])
+            response = Response(profile.gain_dn_per_e, profile.offset_dn, qe)
+        else:
+            response = Response(cfg.response.gain_dn_per_e, cfg.response.offset_dn, cfg.response.quantum_efficiency)
+        bench = Bench(cfg, masks, camera, modulator, safety, response, context, optics, truth, firmware,
+                      profile=profile, flat_field=flat)
+        check_watchdog(bench, cfg.camera.exposure_s)
+    except BaseException:
+        for fw in firmware:
+            fw.stop()
+        raise
+    return bench
+
+
+def check_watchdog(bench: Bench, exposure_s: float) -> None:
+    """ConfigError when the safety box's watchdog would close the shutter during a normal frame.
+
+    Between two commands to the safety box a run waits at most the modulator's settle time, the
+    exposure and the camera's grab timeout; the watchdog must be longer than that."""
+    watchdog_s = float(getattr(bench.safety, "watchdog_s", 0.0) or 0.0)
+    if watchdog_s <= 0:
+        return
+    cfg = bench.config
+    needed = bench.modulator.settle_s + float(exposure_s) + cfg.camera.grab_timeout_s
+    if watchdog_s <= needed:
+        raise ConfigError(cfg.source_path, [("safety.settings.watchdog_s",
+                          f"{watchdog_s:g} s is not longer than one frame's silence towards the safety box "
+                          f"(settle {bench.modulator.settle_s:g} s + exposure {float(exposure_s):g} s + grab timeout "
+                          f"{cfg.camera.grab_timeout_s:g} s = {needed:g} s): the box would close the shutter during "
+                          "normal frames; make watchdog_s longer")])
 
 
 def _load_profile(cfg: BenchConfig):

@@ -219,7 +219,7 @@ class Service:
                 now = time.monotonic()
                 if now >= next_status:
                     self._housekeeping()
-                    self.pub.publish("status", {"source": "service", **self.status()})
+                    self.pub.publish("status", {"source": "service", "status_interval_s": interval, **self.status()})
                     next_status = now + interval
                 wait_ms = max(1, int((next_status - time.monotonic()) * 1000))
                 if self.sock.poll(min(wait_ms, 100)):
@@ -314,6 +314,7 @@ class Service:
             plan_run_disk(self.bench, plan)  # refuse up front a run the disk cannot hold; nothing is written
         except DiskSpaceError as exc:
             raise Refused(str(exc)) from None
+        self._check_watchdog(plan.exposure_s)
         if self.recon is not None and not self.recon.worker_alive():
             # the local reconstruction worker died since the last run: start a fresh one
             self.log("reconstruction worker had exited; starting a new one")
@@ -420,10 +421,20 @@ class Service:
                           "give exposure_s with 'start', or stop the run first")
         if self.state == "taking_darks":
             raise Refused("cannot change the exposure while dark frames are being taken; wait for them to finish")
+        self._check_watchdog(req.exposure_s)
         self.exposure_s = req.exposure_s
         if self.state == "align":
             self._align.set_exposure(req.exposure_s)
         return {"exposure_s": self.exposure_s}
+
+    def _check_watchdog(self, exposure_s: float) -> None:
+        """Refuse an exposure the safety box's watchdog would cut short (see bench.check_watchdog)."""
+        from .bench import check_watchdog
+
+        try:
+            check_watchdog(self.bench, exposure_s)
+        except ConfigError as exc:
+            raise Refused(str(exc)) from None
 
     def _do_take_darks(self, req: C.TakeDarksRequest) -> dict:
         self._require_idle("take dark frames")
@@ -471,6 +482,7 @@ class Service:
         self._require_idle("start align mode")
         self._require_safe_to_open("start align mode")
         if req.exposure_s is not None:
+            self._check_watchdog(req.exposure_s)
             self.exposure_s = req.exposure_s
         k = self.bench.masks.shape[0]
         if req.mask is not None and req.mask >= k:

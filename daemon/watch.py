@@ -52,16 +52,20 @@ class WatchModel:
     messages: int = 0
     bad_messages: int = 0
     gaps: dict = field(default_factory=dict)
+    last_message_s: float | None = None  # time.monotonic() of the last message received
+    status_interval_s: float = 0.5  # the service's status period, from its status messages
     _preview_times: collections.deque = field(default_factory=lambda: collections.deque(maxlen=30))
 
-    def ingest(self, msg: StreamMessage) -> None:
+    def ingest(self, msg: StreamMessage, now_s: float | None = None) -> None:
         h = msg.header
         self.messages += 1
+        self.last_message_s = time.monotonic() if now_s is None else now_s
         if msg.gap:
             self.gaps[h.topic] = self.gaps.get(h.topic, 0) + msg.gap
         if h.topic == "status":
             if h.meta.get("source") == "service":
                 self.status = dict(h.meta)
+                self.status_interval_s = float(h.meta.get("status_interval_s") or self.status_interval_s)
             else:
                 self.run_state = str(h.meta.get("state", ""))
         elif h.topic == "preview" and msg.array is not None:
@@ -75,6 +79,16 @@ class WatchModel:
             level = h.meta.get("level", "info")
             if h.topic == "alert" or h.meta.get("kind") in SHOWN_EVENTS:
                 self.alerts.append((h.t_s, level, str(h.meta.get("message", ""))))
+
+    def silent_for_s(self, now_s: float | None = None) -> float:
+        """Seconds since the last message when that is long enough to mean trouble (the service
+        publishes its status every status_interval_s): more than 5 periods and at least 3 s; else 0.
+        Only for a service: a foreground run publishes status when its state changes, and may be
+        quiet for long (a pause, the wait between the sets of a time series)."""
+        if self.last_message_s is None or not self.status:
+            return 0.0
+        silent = (time.monotonic() if now_s is None else now_s) - self.last_message_s
+        return silent if silent > max(3.0, 5 * self.status_interval_s) else 0.0
 
     @property
     def preview_fps(self) -> float:
@@ -203,8 +217,8 @@ def phase_image(model: WatchModel, max_cols: int = 40, max_rows: int = 32) -> Te
     return half_block_text(phase_rgb(small))
 
 
-def render(model: WatchModel, image_cols: int = 40, image_rows: int = 32):
-    """The whole dashboard as one rich renderable."""
+def render(model: WatchModel, image_cols: int = 40, image_rows: int = 32, now_s: float | None = None):
+    """The whole dashboard as one rich renderable (now_s: time.monotonic() for the silence check)."""
     st = model.status
     state = st.get("state") or model.run_state or "waiting for status"
     safety = st.get("safety") or {}
@@ -294,6 +308,11 @@ def render(model: WatchModel, image_cols: int = 40, image_rows: int = 32):
         alerts.append(time.strftime("%H:%M:%S ", time.localtime(t_s)), style="dim")
         alerts.append(message + "\n", style=style)
     parts = [head]
+    silent = model.silent_for_s(now_s)
+    if silent:
+        parts.insert(0, Text(f" NO MESSAGES FOR {silent:.0f} s: the service may have stopped or the network is down; "
+                             "everything below is the last seen, not the present (check with 'maskrun status') ",
+                             style="bold white on red"))
     if bar is not None:
         row = Table.grid()
         row.add_row(bar, progress_line)

@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import logging
 
-from pydantic import BaseModel, ConfigDict, model_validator
+from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 from .base import SafetyBox
 from .errors import DeviceDisconnected, DeviceError, DeviceFault
@@ -32,7 +32,8 @@ class SafetyCommands(BaseModel):
     identify: sent on open (None: skip). interlock: reply group ``state`` compared with
     ``interlock_closed_value``. shutter_state: group ``state`` compared with ``shutter_open_value``.
     open_shutter / close_shutter: their acknowledgements (give them a timeout_s longer than the
-    shutter travel time).
+    shutter travel time). watchdog: arms the box's own watchdog with ``{seconds}`` (sent on open
+    when the ``watchdog_s`` setting is above 0; None: the box has none).
     """
 
     model_config = ConfigDict(extra="forbid")
@@ -42,6 +43,7 @@ class SafetyCommands(BaseModel):
     shutter_state: LineCommand = LineCommand(send="SHUTTER?", expect=r"SHUTTER (?P<state>\S+)")
     open_shutter: LineCommand = LineCommand(send="SHUTTER OPEN", expect=r"OK SHUTTER OPEN")
     close_shutter: LineCommand = LineCommand(send="SHUTTER CLOSE", expect=r"OK SHUTTER CLOSED")
+    watchdog: LineCommand | None = LineCommand(send="WATCHDOG {seconds}", expect=r"OK WATCHDOG \S+")
 
     @model_validator(mode="after")
     def _placeholders(self):
@@ -51,6 +53,8 @@ class SafetyCommands(BaseModel):
         require_fields(self.shutter_state, "shutter_state", set(), {"state"})
         require_fields(self.open_shutter, "open_shutter", set())
         require_fields(self.close_shutter, "close_shutter", set())
+        if self.watchdog is not None:
+            require_fields(self.watchdog, "watchdog", {"seconds"})
         return self
 
 
@@ -59,14 +63,28 @@ class SerialSafetyBox(SafetyBox):
 
     Settings: port, baud, terminator, encoding, timeout_s, error_reply, reconnect_timeout_s
     (see SerialLineSettings), interlock_closed_value ("CLOSED"), shutter_open_value ("OPEN"),
-    commands (SafetyCommands).
+    watchdog_s (0: off), commands (SafetyCommands).
+
+    Watchdog: with ``watchdog_s`` > 0 the box is told on open (and after a reconnect) to close
+    the shutter by itself when the host has sent no command for that long while the shutter is
+    open, which covers a host program that hangs or freezes with the beam on. A run sends a
+    command before every frame, so ``watchdog_s`` must be longer than the longest exposure plus
+    the camera's grab timeout and the modulator's settle time (checked when the bench is built).
     """
 
     class Settings(SerialLineSettings):
         port: str = "sim:safety"
         interlock_closed_value: str = "CLOSED"
         shutter_open_value: str = "OPEN"
+        watchdog_s: float = Field(0.0, ge=0, description="close the shutter if the host is silent this long "
+                                  "with it open (0: off; needs commands.watchdog)")
         commands: SafetyCommands = SafetyCommands()
+
+        @model_validator(mode="after")
+        def _watchdog_command(self):
+            if self.watchdog_s > 0 and self.commands.watchdog is None:
+                raise ValueError("watchdog_s > 0 needs commands.watchdog (the box's command to arm it)")
+            return self
 
     def __init__(self, settings, context=None):
         super().__init__(settings, context)
@@ -144,6 +162,19 @@ class SerialSafetyBox(SafetyBox):
         if command is not None:
             match = self._query(command)
             self.identity = match.groupdict().get("ident") or match.group(0)
+        self._arm_watchdog()
+
+    def _arm_watchdog(self) -> None:
+        """Arm the box's watchdog (on open and after every reconnect: the box may have restarted)."""
+        command = self.settings.commands.watchdog
+        if self.settings.watchdog_s > 0 and command is not None:
+            line = command.send.format(seconds=f"{self.settings.watchdog_s:g}")
+            self._port.query(line, command.expect, command.timeout_s or self.settings.timeout_s)
+
+    @property
+    def watchdog_s(self) -> float:
+        """The box's watchdog period in seconds (0: off)."""
+        return float(self.settings.watchdog_s)
 
     def interlock_closed(self) -> bool:
         return self._query(self.settings.commands.interlock).group("state") == self.settings.interlock_closed_value

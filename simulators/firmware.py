@@ -27,10 +27,15 @@ Safety box (interlock chain and beam shutter):
     SHUTTER?        -> SHUTTER OPEN | SHUTTER CLOSED
     SHUTTER OPEN    -> OK SHUTTER OPEN     (ERR interlock open, if it is; takes settle_s)
     SHUTTER CLOSE   -> OK SHUTTER CLOSED   (always accepted)
+    WATCHDOG <s>    -> OK WATCHDOG <s>     (0 = off; ERR if negative or not a number)
+    WATCHDOG?       -> WATCHDOG <s> TRIPS <n>
 
 The safety box is fail-safe: if the interlock opens while the shutter is
 open it closes the shutter by itself at once (hardware interlock), and when
-its host link is lost (unplug, stop) it closes the shutter too.
+its host link is lost (unplug, stop) it closes the shutter too. With the
+watchdog armed, a shutter left open while the host sends no command for
+``s`` seconds (a hung or frozen host program) is closed by the box itself;
+every command counts as a sign of life.
 
 Faults (``FirmwareFault`` or plain dicts), counted over command lines received
 since the start (1 = first command):
@@ -169,7 +174,26 @@ class _SafetyProtocol(_Protocol):
     def __init__(self, optics, settle_s):
         super().__init__(optics, settle_s)
         self.trips = 0
+        self.watchdog_s = 0.0
+        self.watchdog_trips = 0
+        self.last_command_s = time.monotonic()
         self._unsubscribe = optics.subscribe(self._on_optics_change)
+
+    def handle(self, line: str) -> str:
+        self.last_command_s = time.monotonic()  # any command is a sign of life for the watchdog
+        return super().handle(line)
+
+    def next_deadline(self):
+        if self.watchdog_s > 0 and self.optics.shutter_open:
+            return self.last_command_s + self.watchdog_s
+        return None
+
+    def tick(self, now):
+        if self.watchdog_s > 0 and self.optics.shutter_open and now - self.last_command_s >= self.watchdog_s:
+            self.optics.shutter_open = False
+            self.watchdog_trips += 1
+            log.warning("simulated safety box: no command for %.3g s with the shutter open; watchdog closed it",
+                        now - self.last_command_s)
 
     def _on_optics_change(self, name, value):
         # Hardware interlock: opening the chain closes the shutter at once.
@@ -198,6 +222,17 @@ class _SafetyProtocol(_Protocol):
         if line == "SHUTTER CLOSE":
             self.optics.shutter_open = False
             return "OK SHUTTER CLOSED"
+        if line == "WATCHDOG?":
+            return f"WATCHDOG {self.watchdog_s:g} TRIPS {self.watchdog_trips}"
+        if words[0] == "WATCHDOG" and len(words) == 2:
+            try:
+                seconds = float(words[1])
+            except ValueError:
+                seconds = float("nan")
+            if not seconds >= 0 or seconds == float("inf"):
+                return f"ERR watchdog must be 0 (off) or a positive number of seconds, got {words[1]}"
+            self.watchdog_s = seconds
+            return f"OK WATCHDOG {seconds:g}"
         return f"ERR unknown command {line}"
 
     def link_lost(self):

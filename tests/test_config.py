@@ -98,3 +98,17 @@ def test_response_needs_data_sheet_values_or_a_profile():
     profile_only = _with(no_gain, "offset_dn = 100.0\nquantum_efficiency = 0.6\n", 'profile = "cam.json"\n')
     cfg = parse_config(profile_only, "bench.toml")
     assert cfg.response.gain_dn_per_e is None and cfg.response.profile == "cam.json"
+
+
+def test_a_watchdog_shorter_than_one_frame_is_refused_when_the_bench_is_built():
+    """The safety box's watchdog must outlast one frame's silence towards it (settle + exposure +
+    grab timeout), else the box would close the shutter during normal frames."""
+    from maskrun.daemon.bench import build_bench
+
+    text = _with(demo_config_text(), "exposure_s = 0.01", "exposure_s = 4.0")
+    with pytest.raises(ConfigError) as exc:
+        build_bench(parse_config(text, "bench.toml"))
+    msg = str(exc.value)
+    assert "bench.toml: safety.settings.watchdog_s: 5 s is not longer than" in msg and "6.02 s" in msg
+    bench = build_bench(parse_config(_with(text, "watchdog_s = 5.0", "watchdog_s = 10.0"), "bench.toml"))
+    bench.close()

@@ -305,3 +305,37 @@ def test_serial_safety_fault_surfaces_as_timeout(optics, firmware):
             _timed(box.interlock_closed)
         assert _timed.elapsed < 0.5
         assert box.interlock_closed()
+
+
+def test_safety_box_watchdog_closes_the_shutter_when_the_host_falls_silent(optics, firmware):
+    """The box's own watchdog, armed by the driver on open: commands keep the shutter open; silence
+    with the shutter open (a hung host program) closes it, and the box counts the trip."""
+    fw = firmware("safety", optics)
+    ctx = BenchContext(optics=optics, ports={"safety": fw.port})
+    box = SerialSafetyBox(SerialSafetyBox.Settings(watchdog_s=0.4), ctx)
+    with box:
+        box.open_shutter()
+        for _ in range(8):  # 0.8 s of a host that keeps talking: twice the watchdog period
+            time.sleep(0.1)
+            assert box.interlock_closed()
+        assert optics.shutter_open
+        time.sleep(0.8)  # the host falls silent with the shutter open
+        assert not optics.shutter_open
+        # the box's own trip counter, read over the driver's line
+        assert box._port.query("WATCHDOG?", r"WATCHDOG 0.4 TRIPS (?P<n>\d+)", 1.0)["n"] == "1"
+        box.open_shutter()  # a live host can open it again
+        assert optics.shutter_open
+    assert not optics.shutter_open
+
+
+def test_safety_box_watchdog_settings_are_checked(optics, firmware):
+    fw = firmware("safety", optics)
+    with pytest.raises(ValueError, match="watchdog_s > 0 needs commands.watchdog"):
+        SerialSafetyBox.Settings(watchdog_s=1.0, commands={"watchdog": None})
+    with pytest.raises(ValueError, match="watchdog.send uses unknown placeholder"):
+        SerialSafetyBox.Settings(commands={"watchdog": {"send": "WD {period}", "expect": "OK"}})
+    with LinePort(fw.port, device="safety box") as port:  # the firmware refuses nonsense
+        for bad in ("-1", "soon", "inf"):
+            with pytest.raises(DeviceFault, match="watchdog must be 0 .off. or a positive number of seconds"):
+                port.query(f"WATCHDOG {bad}", r"OK WATCHDOG \S+", 1.0)
+        assert port.query("WATCHDOG 0", r"OK WATCHDOG (?P<s>\S+)", 1.0)["s"] == "0"

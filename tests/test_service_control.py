@@ -166,6 +166,13 @@ def test_dark_frames_and_exposure_while_idle(client):
     # shutter closed: only the camera offset (100 DN in the bench config) plus dark current
     assert abs(darks["mean_dn"] - 100.0) < 3.0
     assert client.status()["exposure_s"] == 0.004
+    # an exposure the safety box's watchdog (5 s in the bench config) would cut short is refused
+    err = refused(client.set_exposure, 4.0)
+    assert "watchdog_s" in err.error and "make watchdog_s longer" in err.error
+    client.acknowledge("test operator")
+    err = refused(client.start, exposure_s=4.0)
+    assert "watchdog_s" in err.error and err.state == "idle"
+    assert client.status()["exposure_s"] == 0.004
     client.set_exposure(0.002)
 
 

@@ -172,3 +172,45 @@ def test_terminal_image_helpers_agree_with_reference_implementations():
     # reference: scikit-image block_reduce (block means / maxima over 4 x 4 blocks)
     assert np.allclose(shrink(img, 24, 16, "mean"), block_reduce(img, (4, 4), np.mean), atol=1e-6)
     assert np.array_equal(shrink(img, 24, 16, "max"), block_reduce(img, (4, 4), np.max))
+
+
+def test_watch_says_when_the_service_has_gone_silent(tmp_path):
+    """A service killed mid-run leaves a dashboard that would show 'acquiring, shutter OPEN' for ever;
+    once no message has come for 5 status periods (at least 3 s) the dashboard says so in red."""
+    import signal
+
+    d = Daemon(tmp_path / "svc-silent", service_config_text(passes=500, exposure_s=0.002)).wait_ready()
+    ctx = zmq.Context()
+    sub = Subscriber(ctx, d.stream, ("status",), hwm=100)
+    model = WatchModel()
+
+    def listen(seconds):
+        end = time.monotonic() + seconds
+        while time.monotonic() < end:
+            msg = sub.receive(timeout_s=0.1)
+            if msg is not None:
+                model.ingest(msg)
+
+    def text():
+        out = Console(file=io.StringIO(), width=200, color_system=None)
+        out.print(render(model))
+        return out.file.getvalue()
+
+    try:
+        with ServiceClient(d.control, timeout_s=10) as c:
+            c.acknowledge("test operator")
+            c.start(passes=500, name="silent")
+            c.wait_state("acquiring", timeout_s=20)
+        listen(1.0)
+        assert model.status.get("state") == "acquiring" and model.status_interval_s == pytest.approx(0.2)
+        assert "NO MESSAGES" not in text()
+        d.proc.send_signal(signal.SIGKILL)
+        d.proc.wait(timeout=10)
+        listen(3.5)
+        shown = text()
+        assert "NO MESSAGES FOR" in shown and "maskrun status" in shown
+        assert "state: acquiring" in shown  # the last seen, under the warning
+    finally:
+        sub.close()
+        ctx.term()
+        d.stop()
