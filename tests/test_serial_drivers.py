@@ -17,7 +17,6 @@ from maskrun.drivers.registry import build_driver
 from maskrun.drivers.serial_modulator import SerialLineModulator
 from maskrun.drivers.serial_port import LinePort
 from maskrun.drivers.serial_safety import SerialSafetyBox
-from maskrun.simulators.firmware import start_firmware
 from maskrun.simulators.optics import SimulatedOptics
 
 
