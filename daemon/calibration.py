@@ -148,7 +148,8 @@ def measure_photon_transfer(
             bright = _take_frames(camera, t, frames_per_step, discard_frames, 2 * t + timeout_margin_s)
             if not safety_box.shutter_is_open():
                 raise DeviceFault(
-                    f"the shutter closed during the bright frames at {t:.4g} s (interlock opened?)",
+                    f"the shutter closed during the bright frames at {t:.4g} s (interlock opened, or the safety "
+                    "box's watchdog closed it: a step longer than [safety.settings] watchdog_s?)",
                     device="safety",
                     hint="close the interlock chain and calibrate again; the frames of this step were discarded",
                 )
@@ -327,12 +328,15 @@ def measure_flat_field(
         safety_box.open_shutter()
         for i in range(frames):
             (px,) = _take_frames(camera, exposure_s, 1, discard_frames if i == 0 else 0, timeout)
+            if not safety_box.shutter_is_open():  # per frame: a closed shutter is caught at once, and the box's
+                break                            # watchdog hears from us during a long series
             clipped += int(np.count_nonzero(px >= max_dn))
             bright_sum = px.astype(np.float64) if bright_sum is None else bright_sum + px
             if progress is not None:
                 progress(dark_frames + i + 1, total, f"flat frame {i + 1}/{frames}")
         if not safety_box.shutter_is_open():
-            raise DeviceFault("the shutter closed during the flat frames (interlock opened?)", device="safety",
+            raise DeviceFault("the shutter closed during the flat frames (interlock opened, or the safety box's "
+                              "watchdog closed it: frames longer than [safety.settings] watchdog_s?)", device="safety",
                               hint="close the interlock chain and calibrate again")
     except Exception as exc:
         raise CalibrationAborted(f"flat frames stopped: {exc}", []) from exc
