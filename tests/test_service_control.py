@@ -91,13 +91,18 @@ def test_full_run_driven_by_the_client_with_pause_and_resume(client, daemon):
     assert client.status()["safety"]["shutter_open"] is False
 
 
-def test_stop_keeps_what_was_taken(client, daemon):
+def _start_and_take_frames(client, name: str, passes: int, frames: int = 3) -> None:
+    """Acknowledge, start a run and wait until it has taken ``frames`` frames."""
     client.acknowledge("test operator")
-    client.start(passes=200, name="stopped")
+    client.start(passes=passes, name=name)
     client.wait_state("acquiring", timeout_s=20)
     deadline = time.monotonic() + 20
-    while client.status()["run"]["frames_done"] < 3 and time.monotonic() < deadline:
+    while client.status()["run"]["frames_done"] < frames and time.monotonic() < deadline:
         time.sleep(0.05)
+
+
+def test_stop_keeps_what_was_taken(client, daemon):
+    _start_and_take_frames(client, "stopped", passes=200)
     client.stop("enough")
     st = client.wait_idle(timeout_s=30)
     last = st["last_run"]
@@ -227,12 +232,7 @@ def test_sighup_shuts_the_service_down_safely_mid_run(tmp_path):
     d = Daemon(tmp_path / "svc-hup", service_config_text(passes=500, exposure_s=0.002)).wait_ready()
     try:
         with ServiceClient(d.control, timeout_s=10) as c:
-            c.acknowledge("test operator")
-            c.start(passes=500, name="hup")
-            c.wait_state("acquiring", timeout_s=20)
-            deadline = time.monotonic() + 20
-            while c.status()["run"]["frames_done"] < 3 and time.monotonic() < deadline:
-                time.sleep(0.05)
+            _start_and_take_frames(c, "hup", passes=500)
         d.proc.send_signal(signal.SIGHUP)
         assert d.proc.wait(timeout=30) == 0, d.output()
         assert "shutter closed" in d.output()
