@@ -163,6 +163,10 @@ def build_bench(cfg: BenchConfig) -> Bench:
         bench = Bench(cfg, masks, camera, modulator, safety, response, context, optics, truth, firmware,
                       profile=profile, flat_field=flat)
         check_watchdog(bench, cfg.camera.exposure_s)
+        if cfg.reconstruction.enabled:
+            from .remote_workers import link_options
+
+            link_options(cfg)  # ConfigError for a worker address or keys that cannot work, before any notice
     except BaseException:
         for fw in firmware:
             fw.stop()

@@ -13,6 +13,7 @@ from pathlib import Path
 
 import numpy as np
 from rich.console import Console
+from rich.markup import escape
 from rich.table import Table
 
 from .store import FLAG_NAMES
@@ -132,5 +133,5 @@ def cmd_inspect(args) -> int:
                     return 1
         except KeyboardInterrupt:
             return 0
-        console.print(f"[bold]run ended:[/] {run_outcome(rf)}")
+        console.print(f"[bold]run ended:[/] {escape(run_outcome(rf))}")
     return 0

@@ -8,6 +8,7 @@ file; see ``maskrun.daemon.reprocess`` for the conversion and the layout.
 from __future__ import annotations
 
 from rich.console import Console
+from rich.markup import escape
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn, TimeRemainingColumn
 
 
@@ -70,7 +71,7 @@ def cmd_reconstruct(args) -> int:
             console.print(f"{r.run_path}: {r.frame_sets} estimates -> [bold]{r.results_path}[/]")
         for set_index, msg in r.failed:
             failures += 1
-            console.print(f"[bold red]{r.run_path}: frame set {set_index} failed:[/] {msg}")
+            console.print(f"[bold red]{escape(str(r.run_path))}: frame set {set_index} failed:[/] {escape(str(msg))}")
     console.print(f"computed by {runner.description}, method {options.method}, "
                   f"{options.iterations or 'default'} iterations, mode {options.mode}")
     return 1 if failures else 0

@@ -130,7 +130,8 @@ def cmd_keys(args) -> int:
     c.print(f"Server keys: {paths['server_secret']} (keep on the daemon's machine), {paths['server_public']}")
     c.print(f"Client keys: {paths['client_secret']} (give to the client), {paths['client_public']}")
     c.print("In the daemon's config:\n  [service]\n"
-            f"  server_secret_key = \"{paths['server_secret']}\"\n  authorized_clients_dir = \"{paths['authorized_clients']}\"")
+            f"  server_secret_key = \"{paths['server_secret']}\"\n  authorized_clients_dir = \"{paths['authorized_clients']}\"",
+            markup=False)
     c.print(f"Clients: maskrun status --address tcp://HOST:5650 --keys {args.dir}  "
             "(the folder needs client.key_secret and server.key)")
     return 0

@@ -135,7 +135,7 @@ def resume_foreground(path: str | Path, req: RunRequest, console: Console) -> Ru
         plan = RunPlan(passes=point.passes, dark_frames=point.dark_frames, exposure_s=point.exposure_s,
                        output_path=path, interval_s=point.interval_s, first_pass=point.first_pass,
                        first_set_index=point.first_set_index, resumed=True, dose_photons_before=point.dose_photons)
-        console.print(f"Resuming [bold]{path}[/]: {point.note()}")
+        console.print(f"Resuming [bold]{escape(str(path))}[/]: {escape(point.note())}")
         for line in describe_plan(bench, plan):
             console.print(line)
         ack = acknowledge(cfg.laser, console, unattended=req.acknowledge_unattended, operator=cfg.run.operator)
@@ -189,9 +189,9 @@ def _run(cfg, req, bench, plan: RunPlan, ack, console: Console, *, append: bool 
                 if p.state != last_state[0]:
                     last_state[0] = p.state
                     if p.state.value == "paused":
-                        progress.console.print(f"[bold red]PAUSED[/] {time.strftime('%H:%M:%S')}: {p.message}")
+                        progress.console.print(f"[bold red]PAUSED[/] {time.strftime('%H:%M:%S')}: {escape(p.message)}")
                     elif p.state.value == "acquiring" and p.message.startswith("resumed"):
-                        progress.console.print(f"[bold green]RESUMED[/] {time.strftime('%H:%M:%S')}: {p.message}")
+                        progress.console.print(f"[bold green]RESUMED[/] {time.strftime('%H:%M:%S')}: {escape(p.message)}")
                 detail = p.state.value
                 if p.pass_index >= 0:
                     detail += f" pass {p.pass_index + 1}/{plan.passes}"
@@ -205,7 +205,7 @@ def _run(cfg, req, bench, plan: RunPlan, ack, console: Console, *, append: bool 
                                   observer=observer, run_name=run_name or req.name or cfg.run.name,
                                   append=append, resume_note=resume_note, extra_events=extra_events)
         if summary.state.value != "finished":
-            console.print(f"[bold]Run {summary.state.value}[/]: {summary.message}")
+            console.print(f"[bold]Run {summary.state.value}[/]: {escape(summary.message)}")
             console.print(f"Shutter closed; run file flushed and closed with {summary.sets_in_file} complete frame "
                           f"sets. Continue with: [bold]maskrun resume {out} --acknowledge-safety[/]")
     finally:

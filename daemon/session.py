@@ -122,10 +122,20 @@ def execute_run(
     earlier = None
     if append and own_recon and bench.config.reconstruction.enabled:
         earlier = _earlier_live_data(plan.output_path, bench.config.reconstruction)  # read before reopening
-    if append:
-        store = RunStore.reopen(plan.output_path)
+    if own_recon:
+        # ConfigError here (worker address, keys, a port in use): nothing written yet
+        recon = make_recon_link(bench, zmq_context)
     else:
-        store = RunStore.create(plan.output_path, run_header(bench, ack, run_name, plan))
+        recon.new_run()
+    try:
+        if append:
+            store = RunStore.reopen(plan.output_path)
+        else:
+            store = RunStore.create(plan.output_path, run_header(bench, ack, run_name, plan))
+    except BaseException:
+        if own_recon and recon is not None:
+            recon.close()
+        raise
     try:
         if append:
             store.log("resume", f"resumed at pass {plan.first_pass} (set {plan.first_set_index}); {resume_note}".rstrip("; "),
@@ -140,14 +150,10 @@ def execute_run(
         darks = dark_advice(bench, plan)
         if darks:
             store.log("dark_frames_few", darks, "warning")
-        if own_recon:
-            recon = make_recon_link(bench, zmq_context)
-            if recon is not None and earlier is not None and earlier.held:
-                recon.preload(earlier)
-                store.log("recon_preload", f"live reconstruction continues from the {earlier.held} frame set(s) "
-                          "already in the file", "info")
-        else:
-            recon.new_run()
+        if recon is not None and earlier is not None and earlier.held:
+            recon.preload(earlier)
+            store.log("recon_preload", f"live reconstruction continues from the {earlier.held} frame set(s) "
+                      "already in the file", "info")
         seq = Sequencer(bench, store, publisher, recon, plan, control, observer)
         return seq.run()
     finally:

@@ -302,11 +302,16 @@ def test_live_run_reconstructed_by_a_remote_worker_only(tmp_path):
         assert not any(e["kind"] == "recon_incomplete" for e in rf.events())
 
 
-def test_unsafe_addresses_are_refused(capsys):
+def test_unsafe_addresses_are_refused(capsys, tmp_path):
     cfg = parse_config(_remote_config_text(5000, passes=1).replace("tcp://127.0.0.1:5000", "tcp://0.0.0.0:5000"),
                        "open-bench.toml")
     with pytest.raises(ConfigError, match="no CURVE keys"):
         link_options(cfg)
+    # a run with that config is refused before the safety notice, and nothing is written
+    with pytest.raises(ConfigError, match="reconstruction.worker_address"):
+        run_foreground(cfg, RunRequest(acknowledge_unattended=True, output_dir=str(tmp_path / "out")),
+                       Console(file=io.StringIO()))
+    assert not (tmp_path / "out").exists()
     # a worker refuses a non-loopback daemon without keys before opening any socket
     assert cli_main(["worker", "--connect", "tcp://daemon-host.invalid:5000"]) == 2
     assert "--keys" in capsys.readouterr().err
