@@ -478,3 +478,34 @@ def test_closing_the_terminal_of_a_foreground_run_stops_it_cleanly(tmp_path):
     os.close(master)  # hang up
     assert proc.wait(timeout=30) != 0
     _assert_stopped_cleanly_by(out, "SIGHUP")
+
+
+def test_a_hung_run_has_its_shutter_closed_by_the_safety_box_watchdog(tmp_path):
+    """The sequencer thread hangs for 1.2 s mid-pass with the shutter open (here: a blocking observer);
+    the safety box's watchdog (0.4 s) closes the shutter by itself; when the program comes back the
+    run carries on, reopens the shutter before the next frame and finishes with every frame lit."""
+    text = bench_text(passes=3)
+    assert "watchdog_s = 5.0" in text
+    text = text.replace("watchdog_s = 5.0", "watchdog_s = 0.4", 1)
+    changes = []
+    hung = {}
+
+    def observer(p, bench, control):
+        if not hung and p.frames_done == 3:
+            bench.optics.subscribe(lambda name, value: changes.append((time.monotonic(), name, value)))
+            assert bench.optics.shutter_open
+            hung["from"] = time.monotonic()
+            time.sleep(1.2)  # the program hangs with the beam on
+            hung["to"] = time.monotonic()
+            hung["shutter_after"] = bench.optics.shutter_open
+
+    summary, watch = run_bench(tmp_path, text, observer=observer)
+    assert summary.state == State.finished, summary.message
+    closed_during_hang = [t for t, name, value in changes
+                          if name == "shutter_open" and not value and hung["from"] < t < hung["to"]]
+    assert closed_during_hang and hung["shutter_after"] is False
+    assert 0.35 <= closed_during_hang[0] - hung["from"] < 1.2  # not before the watchdog period (load may delay it)
+    with RunFile(summary.output_path) as rf:
+        assert len(rf.complete_sets()) == 3
+        assert rf.frame_info()["photons"].min() > 1e4  # every kept frame was taken with the shutter open
+    assert not watch.violations
