@@ -33,7 +33,6 @@ import subprocess
 import sys
 import time
 import uuid
-
 from collections.abc import Iterable
 
 import numpy as np
