@@ -109,6 +109,9 @@ def iteration_cost(n: int, dtype, samples: int = 9, iters: int = 20) -> dict:
 def section_a() -> None:
     print("(a) one iteration / the 2K-FFT floor (2K = 16 FFT units), K = 8; target <= 1.3 at 256x256 complex64")
     print("    median of interleaved samples [ratio of minima]; FFT units = 16 x ratio")
+    from maskrun.reconstruct import kernels
+    print("    elementwise passes: " + ("fused numba kernels" if kernels.accelerated()
+                                        else "numpy (numba unavailable or MASKRUN_JIT=0)"))
     for cores_label, workers in (("all cores", None), ("one core", 1)):
         rfft.set_max_workers(workers)
         for n in (256, 512):

@@ -1,6 +1,7 @@
 """maskrun.reconstruct - multi-mask phase retrieval: right, fast, incremental.
 
-Pure numerics (numpy, scipy): no devices, no I/O except ``load_masks``.
+Pure numerics (numpy, scipy; numba compiles the fused kernels of the solvers' hot
+loops, with a numpy fallback): no devices, no I/O except ``load_masks``.
 
 Model
 -----

@@ -51,6 +51,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from . import kernels
 from .fft import FFTPlan, PropagatorPlan
 from .metrics import norm as _norm
 from .metrics import relative_error
@@ -105,16 +106,6 @@ class SolveResult:
     @property
     def residual(self) -> float:
         return float(self.residuals[-1]) if len(self.residuals) else float("nan")
-
-
-def _sumsq(d: np.ndarray) -> float:
-    """Sum of squares of a 1-D real array without BLAS.
-
-    np.dot goes through the threaded BLAS, which on a shared 2-core machine
-    was seen to take 8 ms instead of 2 us for 16k doubles; einsum's own loop
-    is single-threaded and predictable.
-    """
-    return float(np.einsum("i,i->", d, d))
 
 
 _POOL = None
@@ -203,12 +194,11 @@ class Workspace:
         self.transfer = None if propagation is None else propagation.transfer(self.shape)
         self.plan = self._wrap(FFTPlan(self.shape, self.dtype, fft_backend))
         self.Z = np.empty(self.shape, self.dtype)
-        self.R = np.empty(self.shape, self.real_dtype)
-        self.D = np.empty(self.shape, self.real_dtype)
         self.sqrty = np.zeros(self.shape, self.real_dtype)
         self.y = np.zeros(self.shape, self.real_dtype)
         self.norm_sqrty = 1.0
         self.tiny = self.real_dtype(np.finfo(self.real_dtype).tiny * 1e3)
+        kernels.accelerated()  # load (or compile) the fused kernels now, not inside the chunk threads
         self._set_threads(threads, fft_backend)
 
     def _wrap(self, plan):
@@ -231,6 +221,8 @@ class Workspace:
         self.threads = threads
         bounds = np.linspace(0, K, threads + 1).round().astype(int)
         self.chunks = [slice(int(a), int(b)) for a, b in zip(bounds[:-1], bounds[1:])]
+        # one (H, W) buffer per extra chunk for its partial sum over masks (chunk 0 writes the result)
+        self.partials = [np.empty(self.shape[1:], self.dtype) for _ in self.chunks[1:]]
         if threads == 1:
             self.chunk_plans = [self.plan]
         else:
@@ -251,6 +243,17 @@ class Workspace:
         first = fn(self.chunks[0], self.chunk_plans[0])
         return [first] + [f.result() for f in futures]
 
+    def sum_buffer(self, c: slice, out: np.ndarray) -> np.ndarray:
+        """Where chunk ``c`` writes its partial sum over masks: ``out`` for the first chunk."""
+        i = self.chunks.index(c)
+        return out if i == 0 else self.partials[i - 1]
+
+    def add_partials(self, out: np.ndarray) -> np.ndarray:
+        """out += the other chunks' partial sums (after map_chunks); return out."""
+        for p in self.partials:
+            out += p
+        return out
+
     def set_intensities(self, y: np.ndarray) -> None:
         self.y[...] = y
         np.sqrt(self.y, out=self.sqrty)
@@ -268,27 +271,15 @@ class Workspace:
         np.multiply(z, self.masks_conj_w, out=z)
         return z.sum(axis=0)
 
-    def magnitude_project(self, z: np.ndarray, out: np.ndarray, want_residual: bool) -> float:
-        """out = sqrt(y) * z/|z|; return the relative amplitude residual of z (or nan)."""
-        R = self.R
-        np.abs(z, out=R)
-        res = float("nan")
-        if want_residual:
-            D = self.D
-            np.subtract(self.sqrty, R, out=D)
-            d = D.reshape(-1)
-            res = float(np.sqrt(_sumsq(d))) / self.norm_sqrty
-        R += self.tiny  # avoids 0/0; cheaper than np.maximum
-        np.divide(self.sqrty, R, out=R)
-        np.multiply(z, R, out=out)
-        return res
+    def magnitude_project(self, z: np.ndarray, out: np.ndarray) -> float:
+        """out = sqrt(y) * z/|z| (out may be z); return the relative amplitude residual of z."""
+        if out is not z:
+            out[...] = z
+        return float(np.sqrt(kernels.amplitude_project(out, self.sqrty, self.tiny))) / self.norm_sqrty
 
     def residual_of(self, x: np.ndarray) -> float:
-        z = self.apply(x, self.Z)
-        np.abs(z, out=self.R)
-        np.subtract(self.sqrty, self.R, out=self.D)
-        d = self.D.reshape(-1)
-        return float(np.sqrt(_sumsq(d))) / self.norm_sqrty
+        """Relative amplitude residual || |A x| - sqrt(y) || / || sqrt(y) || (uses the Z buffer)."""
+        return self.magnitude_project(self.apply(x, self.Z), self.Z)
 
 
 class _Constraints:
@@ -389,28 +380,26 @@ class _Stopper:
 
 
 def _er_step(ws, x):
-    """One error-reduction step; returns (new x, relative residual of the old x)."""
-    masks, mcw, Z, R, D, sqrty, tiny = ws.masks, ws.masks_conj_w, ws.Z, ws.R, ws.D, ws.sqrty, ws.tiny
+    """One error-reduction step; returns (new x, relative residual of the old x).
+
+    Per chunk of masks: mask multiply, FFT, magnitude projection with the residual (one fused
+    pass), inverse FFT, conjugate-mask multiply and sum over masks (one fused pass).
+    """
+    masks, mcw, Z, sqrty, tiny = ws.masks, ws.masks_conj_w, ws.Z, ws.sqrty, ws.tiny
+    xn = np.empty(ws.shape[1:], ws.dtype)
 
     def chunk(c, plan):
-        Zc, Rc, Dc, sy = Z[c], R[c], D[c], sqrty[c]
+        Zc = Z[c]
         np.multiply(masks[c], x, out=Zc)
         plan.forward(Zc)
-        np.abs(Zc, out=Rc)
-        np.subtract(sy, Rc, out=Dc)
-        ss = _sumsq(Dc.reshape(-1))
-        Rc += tiny  # avoids 0/0; cheaper than np.maximum
-        np.divide(sy, Rc, out=Rc)
-        Zc *= Rc
+        ss = kernels.amplitude_project(Zc, sqrty[c], tiny)
         plan.inverse(Zc)
-        Zc *= mcw[c]
-        return Zc.sum(axis=0), ss
+        kernels.conj_mask_sum(Zc, mcw[c], ws.sum_buffer(c, xn))
+        return ss
 
     parts = ws.map_chunks(chunk)
-    xn = parts[0][0]
-    for p in parts[1:]:
-        xn += p[0]
-    return xn, float(np.sqrt(sum(p[1] for p in parts))) / ws.norm_sqrty
+    ws.add_partials(xn)
+    return xn, float(np.sqrt(sum(parts))) / ws.norm_sqrty
 
 
 def _run_er(ws, x, n, cons, residuals, stopper, deadline, truth, errors):
@@ -435,58 +424,53 @@ class _RAARState:
 
 def _raar_estimate(ws, st):
     """x = (A^*A)^{-1} A^* P_M(Z), the estimate carried by the lifted iterate."""
-    ws.magnitude_project(st.Zl, ws.Z, False)
+    ws.magnitude_project(st.Zl, ws.Z)
     return ws.pseudo_inverse(ws.Z)
 
 
 def _run_raar(ws, x, n, cons, residuals, stopper, deadline, truth, errors, beta=0.9, state=None):
-    """RAAR in the lifted Fourier space, fused to 7 complex buffer passes per iteration.
+    """RAAR in the lifted Fourier space: 2K FFTs and three passes over the K frames per iteration.
 
     With P = P_M(Z) = r*Z (r = sqrt(y)/|Z|) the update
     Z <- beta (Z + P_R(2P - Z)) + (1 - 2 beta) P is computed as
     Z <- Z * (beta + (1 - 2 beta) r) + A(beta * x_s),  x_s = (A^*A)^{-1} A^* (Z (2r - 1)).
+    The reflection T = Z (r - 1/2) of the next iteration (and its residual) is made in the same
+    pass as the update.
     """
     st = state or _RAARState(ws)
     Zl, T = st.Zl, st.T
-    R, D, sqrty, tiny, masks, mcw = ws.R, ws.D, ws.sqrty, ws.tiny, ws.masks, ws.masks_conj_w
-    ws.apply(x, Zl)
+    sqrty, tiny, masks, mcw = ws.sqrty, ws.tiny, ws.masks, ws.masks_conj_w
     a, b = 1.0 - 2.0 * beta, beta
+    xs = np.empty(ws.shape[1:], ws.dtype)
+
+    def start(c, plan):
+        Zc = Zl[c]
+        np.multiply(masks[c], x, out=Zc)
+        plan.forward(Zc)
+        return kernels.raar_reflect(Zc, sqrty[c], tiny, T[c])  # T = (2P - Z) / 2
 
     def phase1(c, plan):
-        Zc, Rc, Dc, Tc, sy = Zl[c], R[c], D[c], T[c], sqrty[c]
-        np.abs(Zc, out=Rc)
-        np.subtract(sy, Rc, out=Dc)
-        ss = _sumsq(Dc.reshape(-1))
-        Rc += tiny
-        np.divide(sy, Rc, out=Rc)
-        np.subtract(Rc, 0.5, out=Dc)
-        np.multiply(Zc, Dc, out=Tc)  # (2P - Z) / 2
+        Tc = T[c]
         plan.inverse(Tc)
-        Tc *= mcw[c]
-        return Tc.sum(axis=0), ss
+        kernels.conj_mask_sum(Tc, mcw[c], ws.sum_buffer(c, xs))
 
     def phase2(c, plan):
-        Zc, Rc, Tc = Zl[c], R[c], T[c]
-        Rc *= a
-        Rc += b
-        Zc *= Rc
+        Tc = T[c]
         np.multiply(masks[c], xs, out=Tc)
         plan.forward(Tc)
-        Zc += Tc
-        return None
+        return kernels.raar_update(Zl[c], sqrty[c], tiny, Tc, a, b)
 
+    ss_parts = ws.map_chunks(start)
     it = 0
     for it in range(1, n + 1):
-        parts = ws.map_chunks(phase1)
-        xs = parts[0][0]
-        for p in parts[1:]:
-            xs += p[0]
-        residuals.append(float(np.sqrt(sum(p[1] for p in parts))) / ws.norm_sqrty)
+        residuals.append(float(np.sqrt(sum(ss_parts))) / ws.norm_sqrty)
+        ws.map_chunks(phase1)
+        ws.add_partials(xs)
         xs *= 2.0
         if cons.active:
             cons(xs)
         xs *= beta
-        ws.map_chunks(phase2)
+        ss_parts = ws.map_chunks(phase2)
         if truth is not None:
             xe = _raar_estimate(ws, st)
             if cons.active:
@@ -555,7 +539,7 @@ def _run_wf(ws, x, n, cons, residuals, stopper, deadline, truth, errors, t0=0, x
     rejected and halved, and the schedule is halved for the rest of the run,
     so the published schedule cannot diverge on hard objects.
     """
-    Z, R = ws.Z, ws.R
+    Z = ws.Z
     H, W = ws.shape[1:]
     npix = H * W
     if x0_norm2 is None:
@@ -564,28 +548,23 @@ def _run_wf(ws, x, n, cons, residuals, stopper, deadline, truth, errors, t0=0, x
     f_prev = np.inf
     masks, mcw, y, sqrty = ws.masks, ws.masks_conj_w, ws.y, ws.sqrty
 
-    def chunk(c, plan):
-        Zc, Rc, Dc = Z[c], R[c], ws.D[c]
+    def chunk(c, plan, g):
+        Zc = Z[c]
         np.multiply(masks[c], x, out=Zc)
         plan.forward(Zc)
-        np.abs(Zc, out=Rc)
-        np.subtract(sqrty[c], Rc, out=Dc)
-        ss = _sumsq(Dc.reshape(-1))
-        np.square(Rc, out=Rc)
-        Rc -= y[c]
-        f = _sumsq(Rc.reshape(-1))
-        Zc *= Rc
+        ss, f = kernels.intensity_gradient(Zc, sqrty[c], y[c])
         plan.inverse(Zc)
-        Zc *= mcw[c]
-        return Zc.sum(axis=0), ss, f
+        kernels.conj_mask_sum(Zc, mcw[c], ws.sum_buffer(c, g))
+        return ss, f
 
     x_prev = g_prev = None
     step_prev = 0.0
     it = 0
     for it in range(1, n + 1):
-        parts = ws.map_chunks(chunk)
-        res = float(np.sqrt(sum(p[1] for p in parts))) / ws.norm_sqrty
-        f = sum(p[2] for p in parts)
+        g = np.empty(ws.shape[1:], ws.dtype)
+        parts = ws.map_chunks(lambda c, plan: chunk(c, plan, g))
+        res = float(np.sqrt(sum(p[0] for p in parts))) / ws.norm_sqrty
+        f = sum(p[1] for p in parts)
         if x_prev is None and not np.isfinite(f):
             raise FloatingPointError("Wirtinger flow: the starting estimate gives a non-finite loss; check x0.")
         if not np.isfinite(f) or f > f_prev:
@@ -603,9 +582,7 @@ def _run_wf(ws, x, n, cons, residuals, stopper, deadline, truth, errors, t0=0, x
             continue
         residuals.append(res)
         f_prev = f
-        g = parts[0][0]
-        for p in parts[1:]:
-            g += p[0]
+        ws.add_partials(g)
         g *= ws.weight_r  # A^* z = w * (A^*A)^{-1} A^* z
         mu = min(1.0 - np.exp(-(t0 + it) / tau0), mu_max) * damping
         step = mu * npix / (ws.mean_weight * x0_norm2)
