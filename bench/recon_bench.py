@@ -121,6 +121,15 @@ def section_a() -> None:
                          for name, (med, mn, t) in r["ratios"].items()]
                 print(f"  {n}x{n} {np.dtype(dtype).name:10s} [{cores_label}, FFT {r['backend']}, "
                       f"{r['threads']} mask chunk(s), floor {r['floor_s'] * 1e3:5.2f} ms]: " + "; ".join(parts))
+    if kernels.accelerated():
+        # the same measurement with the numpy passes, for comparison in the same run
+        kernels.use_jit(False)
+        try:
+            r = iteration_cost(256, np.complex64)
+        finally:
+            kernels.use_jit(None)
+        parts = [f"{name} {med:4.2f} [{mn:4.2f}]" for name, (med, mn, t) in r["ratios"].items() if name != "poisson"]
+        print("  256x256 complex64  [one core, numpy passes instead of the fused kernels]: " + "; ".join(parts))
     rfft.set_max_workers(None)
     print("  (hybrid = raar until the residual is < 2 %, then er: its cost is theirs; poisson runs float64 L-BFGS,"
           " cost per accepted step)")

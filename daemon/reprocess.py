@@ -394,6 +394,8 @@ class ReprocessReport:
 def _provenance(options: ReprocessOptions, mask_count: int, runner_description: str, wall_s: float) -> dict:
     import importlib.metadata
 
+    from maskrun.reconstruct import kernels
+
     try:
         version = importlib.metadata.version("maskrun")
     except importlib.metadata.PackageNotFoundError:  # pragma: no cover - source tree without install
@@ -410,6 +412,7 @@ def _provenance(options: ReprocessOptions, mask_count: int, runner_description: 
         "options_json": options.model_dump_json(),
         "maskrun_version": version,
         "numpy_version": np.__version__,
+        "solver_kernels": kernels.description(),
         "scheduler": runner_description,
         "host": socket.gethostname(),
         "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
@@ -426,7 +429,8 @@ def write_results(path: Path, run_path: str, results: list[FrameSetResult], prov
         /recon                 group; attributes: format, format_version, source_run, source_run_name,
                                frame_sets, failed_sets (JSON [[set_index, message], ...]) and the
                                provenance (method, method_used, iterations, mode, precision, seed,
-                               fft_backend, options_json, maskrun_version, numpy_version, scheduler,
+                               fft_backend, options_json, maskrun_version, numpy_version,
+                               solver_kernels ("numba <version>" or "numpy"), scheduler,
                                host, created_utc, wall_s)
         /recon/estimates       (N, H, W) complex128 (double) or complex64 (single), sqrt(incident photons / s),
                                ordered by (pass_index, set_index)

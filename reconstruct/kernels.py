@@ -4,9 +4,10 @@ Between its two batched FFTs an iteration makes several passes over the K
 frames (magnitude, residual, ratio, scale, conjugate-mask multiply, sum over
 K). Each numpy ufunc is one pass through memory, and at 256x256, K = 8 those
 passes cost almost half as much as the FFTs themselves. The kernels here do
-the same arithmetic in one pass each, compiled at first use by numba (a
-general-purpose JIT compiler for numerical Python; no compiler is needed on
-the machine).
+the same arithmetic in one pass each, compiled by numba (a general-purpose
+JIT compiler for numerical Python; no compiler is needed on the machine) when
+they are first asked for, i.e. when the first solver ``Workspace`` of a
+process is made, and cached on disk.
 
 Every kernel has a numpy twin with the same arithmetic, used when numba is
 missing or ``MASKRUN_JIT=0`` is set (``ACCELERATED`` tells which is active).
@@ -14,7 +15,7 @@ The tests check the two agree.
 
 Arrays are C-contiguous; complex arrays are handled through their real view
 (interleaved re, im), which is what lets the compiler vectorise the loops.
-Sums are accumulated in float64. Division by |z| is guarded by adding
+The compiled kernels accumulate sums in float64. Division by |z| is guarded by adding
 ``tiny`` (a small positive number) to |z|, as the numpy path does.
 
 Kernels
@@ -47,6 +48,8 @@ __all__ = [
     "raar_update",
     "intensity_gradient",
     "use_jit",
+    "accelerated",
+    "description",
 ]
 
 
@@ -63,11 +66,19 @@ def _real_view(a: np.ndarray) -> np.ndarray:
 
 
 # --- numpy twins: the reference arithmetic --------------------------------------------------------
+# (sums of squares with einsum in the working precision: np.dot would go through the threaded
+# BLAS, seen to stall for milliseconds on this kind of machine, and einsum with dtype=float64
+# first copies its inputs)
+
+def _sumsq(d: np.ndarray) -> float:
+    d = d.reshape(-1)
+    return float(np.einsum("i,i->", d, d))
+
 
 def _np_amplitude_project(z, sqrty, tiny):
     r = np.abs(z)
     d = sqrty - r
-    ss = float(np.einsum("i,i->", d.reshape(-1), d.reshape(-1), dtype=np.float64))
+    ss = _sumsq(d)
     r += tiny
     np.divide(sqrty, r, out=r)
     z *= r
@@ -82,7 +93,7 @@ def _np_conj_mask_sum(z, mcw, out):
 def _np_raar_reflect(z, sqrty, tiny, t):
     r = np.abs(z)
     d = sqrty - r
-    ss = float(np.einsum("i,i->", d.reshape(-1), d.reshape(-1), dtype=np.float64))
+    ss = _sumsq(d)
     r += tiny
     np.divide(sqrty, r, out=r)
     np.subtract(r, 0.5, out=d)
@@ -102,10 +113,10 @@ def _np_raar_update(z, sqrty, tiny, t, a, b):
 def _np_intensity_gradient(z, sqrty, y):
     r = np.abs(z)
     d = sqrty - r
-    ss = float(np.einsum("i,i->", d.reshape(-1), d.reshape(-1), dtype=np.float64))
+    ss = _sumsq(d)
     np.square(r, out=r)
     r -= y
-    f = float(np.einsum("i,i->", r.reshape(-1), r.reshape(-1), dtype=np.float64))
+    f = _sumsq(r)
     z *= r
     return ss, f
 
@@ -116,8 +127,30 @@ def _compile():
     """The compiled kernels (made once per process)."""
     global _COMPILED
     if _COMPILED is None:
-        _COMPILED = _define()
+        kernels = _define()
+        _warm_up(kernels)
+        _COMPILED = kernels
     return _COMPILED
+
+
+def _warm_up(k) -> None:
+    """Compile (or load from the disk cache) both precisions now, on tiny arrays.
+
+    So the cost (about 1.5 s the first time on a machine, a fraction of that from the cache)
+    is paid when a solver workspace is made, not inside the first iteration or a chunk thread.
+    """
+    for rdt in (np.float32, np.float64):
+        cdt = np.complex64 if rdt == np.float32 else np.complex128
+        z = np.ones((1, 2), cdt)
+        t = np.ones((1, 2), cdt)
+        sy = np.ones(2, rdt)
+        zf, tf = z.reshape(-1).view(rdt), t.reshape(-1).view(rdt)
+        one = rdt(1.0)
+        k[0](zf, sy, one)
+        k[1](z, t, np.empty(2, cdt))
+        k[2](zf, sy, one, one, tf)
+        k[3](zf, sy, one, one, tf, one, one)
+        k[4](zf, sy, sy)
 
 
 def _define():
@@ -243,6 +276,15 @@ def use_jit(enabled: bool | None) -> None:
 def accelerated() -> bool:
     """True when the compiled kernels are in use."""
     return bool(_jit())
+
+
+def description() -> str:
+    """Which kernels run here, for provenance: "numba <version>" or "numpy"."""
+    if not accelerated():
+        return "numpy"
+    import numba
+
+    return f"numba {numba.__version__}"
 
 
 def __getattr__(name):  # ACCELERATED is evaluated lazily so importing this module stays cheap

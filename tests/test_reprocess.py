@@ -33,7 +33,7 @@ from maskrun.daemon.reprocess import (
 )
 from maskrun.daemon.runfile import RunFile
 from maskrun.daemon.store import StoreError
-from maskrun.reconstruct import forward
+from maskrun.reconstruct import forward, kernels
 
 ITERATIONS = 40
 
@@ -84,6 +84,7 @@ def test_each_frame_set_is_reconstructed_into_a_new_file_and_the_run_is_untouche
     assert attrs["method_used"] == "hybrid" and attrs["iterations"] == ITERATIONS and attrs["mode"] == "each"
     assert attrs["scheduler"] == "local-processes:2" and attrs["host"] and attrs["created_utc"].endswith("Z")
     assert attrs["maskrun_version"] and attrs["source_run"] == str(run_path.resolve())
+    assert attrs["solver_kernels"] == kernels.description()
     # the estimates explain the measured data: |F(m_k x)|^2 matches the frame set (in detected photons per
     # frame set) to the shot-noise level, and the error against the stored truth is a few per cent
     with RunFile(run_path) as rf:
