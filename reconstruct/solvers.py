@@ -268,8 +268,7 @@ class Workspace:
     def pseudo_inverse(self, z: np.ndarray) -> np.ndarray:
         """(A^*A)^{-1} A^* z; destroys z. Returns a new (H, W) array."""
         self.plan.inverse(z)
-        np.multiply(z, self.masks_conj_w, out=z)
-        return z.sum(axis=0)
+        return kernels.conj_mask_sum(z, self.masks_conj_w, np.empty(self.shape[1:], self.dtype))
 
     def magnitude_project(self, z: np.ndarray, out: np.ndarray) -> float:
         """out = sqrt(y) * z/|z| (out may be z); return the relative amplitude residual of z."""
