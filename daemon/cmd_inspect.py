@@ -55,15 +55,15 @@ def run_outcome(rf) -> str:
 
 def summary_table(rf, path: Path) -> Table:
     a = rf.attrs
-    t = Table(title=f"{path.name}", show_header=False)
+    t = Table(title=escape(path.name), show_header=False)
     t.add_column(style="bold")
     t.add_column()
     plan = rf.run_plan or {}
     k = rf.mask_count
     sets = rf.complete_sets()
     info = rf.frame_info()
-    t.add_row("run", f"{a.get('run_name', '?')} created {a.get('created_utc', '?')}")
-    t.add_row("state", run_outcome(rf))
+    t.add_row("run", escape(f"{a.get('run_name', '?')} created {a.get('created_utc', '?')}"))
+    t.add_row("state", escape(run_outcome(rf)))
     passes = plan.get("passes")
     t.add_row("frame sets", f"{len(sets)} complete" + (f" of {passes} planned" if passes else "") + f" ({k} masks each)")
     t.add_row("frames", f"{rf.frame_count} (+ {rf.dark_count} dark, {rf.refused_count} refused and kept)")
@@ -96,7 +96,7 @@ def summary_table(rf, path: Path) -> Table:
 def _event_line(e: dict) -> str:
     stamp = time.strftime("%H:%M:%S", time.localtime(e["t_s"]))
     colour = {"error": "red", "warning": "yellow"}.get(e["level"], "dim")
-    return f"[{colour}]{stamp} {e['level']:<7} {e['kind']:<18}[/] {e['message']}"
+    return f"[{colour}]{stamp} {e['level']:<7} {e['kind']:<18}[/] {escape(e['message'])}"
 
 
 def cmd_inspect(args) -> int:

@@ -182,7 +182,7 @@ def cmd_status(args) -> int:
     if args.json:
         c.print_json(json.dumps(st))
         return 0
-    c.print(_status_lines(st), soft_wrap=True)
+    c.print(_status_lines(st), soft_wrap=True, markup=False)  # messages and paths are plain text
     return 0
 
 
@@ -246,13 +246,14 @@ def cmd_start(args) -> int:
                          interval_s=args.interval_s, name=args.name, output_dir=args.output_dir,
                          output_path=args.output_path)
         c = Console(highlight=False)
-        c.print(f"Run started: {r['frames_total']} frames, exposure {r['exposure_s']:g} s -> {r['output_path']}")
+        c.print(f"Run started: {r['frames_total']} frames, exposure {r['exposure_s']:g} s -> {r['output_path']}",
+                markup=False)
         if not args.wait:
             return 0
         st = client.wait_idle(timeout_s=7 * 86400)
         lr = st.get("last_run") or {}
         c.print(f"Run {lr.get('state')}: {lr.get('frames')} frames, {lr.get('passes_complete')} frame sets"
-                f"{' (' + lr['message'] + ')' if lr.get('message') else ''}")
+                f"{' (' + lr['message'] + ')' if lr.get('message') else ''}", markup=False)
         return 0 if lr.get("state") == "finished" else 1
 
     return _call(args, go)

@@ -222,7 +222,7 @@ def print_summary(summary: RunSummary, console: Console) -> None:
     t = Table(title="Run summary", show_header=False)
     t.add_column(style="bold")
     t.add_column()
-    t.add_row("outcome", summary.state.value + (f" ({summary.message})" if summary.message else ""))
+    t.add_row("outcome", escape(summary.state.value + (f" ({summary.message})" if summary.message else "")))
     t.add_row("frame sets complete", str(summary.passes_complete))
     t.add_row("frames taken", f"{summary.frames} (+ {summary.darks} dark)")
     t.add_row("frames refused", f"{summary.rejected} (stale or repeated frame ids, retaken)"

@@ -52,3 +52,19 @@ def test_too_few_dark_frames_limit_an_accumulated_estimate_and_the_plan_says_so(
     enough, printed = _accumulated_error(tmp_path, PASSES)
     assert "dark frame(s) for" not in printed
     assert enough < 0.8 * few, (few, enough)
+
+
+def test_inspect_prints_event_messages_verbatim(tmp_path, capsys, monkeypatch):
+    """Event messages are plain text: the dark-frame advice names the config table '[run]', which a
+    terminal markup parser would swallow; `maskrun inspect` must print it as written."""
+    from maskrun.daemon import cli
+
+    monkeypatch.setenv("COLUMNS", "400")
+    text = small_bench_text(grid=16, sensor=24, masks=2, passes=PASSES, darks=1, extra_camera="real_time = false")
+    cfg = parse_config(text, str(tmp_path / "b.toml"))
+    summary = run_foreground(cfg, RunRequest(acknowledge_unattended=True, output_dir=str(tmp_path), figure=False),
+                             Console(file=io.StringIO(), width=300))
+    assert summary.state.value == "finished", summary.message
+    assert cli.main(["inspect", str(summary.output_path)]) == 0
+    out = capsys.readouterr().out
+    assert "([run] dark_frames or --dark-frames" in out
