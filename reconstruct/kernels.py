@@ -24,13 +24,17 @@ Kernels
     z <- sqrty * z / (|z| + tiny) in place; returns sum (sqrty - |z|)^2.
 ``conj_mask_sum(z, mcw, out)``
     out = sum_k z[k] * mcw[k] (z and mcw (K, H, W), out (H, W)).
+``backproject_remask(z, masks, inv_w, scale, out)``
+    out = scale * inv_w * sum_k z[k] * conj(masks[k]), then z[k] <- masks[k] * out: the
+    conjugate-mask sum of one iteration and the mask multiply of the next in one pass (it needs
+    every mask at a pixel, so it runs when the masks are not split over threads).
 ``raar_reflect(z, sqrty, tiny, t)``
     t = z * (r - 1/2) with r = sqrty / (|z| + tiny); returns sum (sqrty - |z|)^2.
 ``raar_update(z, sqrty, tiny, t, a, b)``
     z <- z * (a r + b) + t in place, r as above (recomputed from z: cheaper than storing it),
     then ``raar_reflect`` of the new z into t, in the same pass; returns its residual.
-``intensity_gradient(z, sqrty, y)``
-    z <- z * (|z|^2 - y) in place; returns (sum (sqrty - |z|)^2, sum (|z|^2 - y)^2).
+``intensity_gradient(z, y)``
+    z <- z * (|z|^2 - y) in place; returns (sum (sqrt(y) - |z|)^2, sum (|z|^2 - y)^2).
 """
 from __future__ import annotations
 
@@ -44,6 +48,7 @@ __all__ = [
     "ACCELERATED",
     "amplitude_project",
     "conj_mask_sum",
+    "backproject_remask",
     "raar_reflect",
     "raar_update",
     "intensity_gradient",
@@ -90,6 +95,13 @@ def _np_conj_mask_sum(z, mcw, out):
     return out
 
 
+def _np_backproject_remask(z, masks, inv_w, scale, out):
+    np.sum(z * np.conj(masks), axis=0, out=out)
+    out *= inv_w * scale
+    np.multiply(masks, out, out=z)
+    return out
+
+
 def _np_raar_reflect(z, sqrty, tiny, t):
     r = np.abs(z)
     d = sqrty - r
@@ -110,9 +122,9 @@ def _np_raar_update(z, sqrty, tiny, t, a, b):
     return _np_raar_reflect(z, sqrty, tiny, t)
 
 
-def _np_intensity_gradient(z, sqrty, y):
+def _np_intensity_gradient(z, y):
     r = np.abs(z)
-    d = sqrty - r
+    d = np.sqrt(y) - r
     ss = _sumsq(d)
     np.square(r, out=r)
     r -= y
@@ -150,7 +162,8 @@ def _warm_up(k) -> None:
         k[1](z, t, np.empty(2, cdt))
         k[2](zf, sy, one, one, tf)
         k[3](zf, sy, one, one, tf, one, one)
-        k[4](zf, sy, sy)
+        k[4](zf, sy)
+        k[5](z, t, sy, one, np.empty(2, cdt))
 
 
 def _define():
@@ -187,6 +200,45 @@ def _define():
                 out[i] += z[k, i] * m[k, i]
 
     @jit
+    def _acc_first(acc, z, m):
+        for j in range(acc.shape[0]):
+            acc[j] = z[j] * np.conj(m[j])
+
+    @jit
+    def _acc_add(acc, z, m):
+        for j in range(acc.shape[0]):
+            acc[j] += z[j] * np.conj(m[j])
+
+    @jit
+    def _scale_out(acc, w, scale, x):
+        for j in range(acc.shape[0]):
+            v = acc[j] * (w[j] * scale)
+            acc[j] = v
+            x[j] = v
+
+    @jit
+    def _remask(z, m, acc):
+        for j in range(acc.shape[0]):
+            z[j] = m[j] * acc[j]
+
+    @jit
+    def backproject(z, m, w, scale, x):
+        # pixel blocks small enough that the accumulator and the block of every mask stay in
+        # cache between the sum over masks and the multiply that follows
+        K, N = z.shape
+        B = 2048
+        acc = np.empty(B, z.dtype)
+        for s in range(0, N, B):
+            e = min(N, s + B)
+            a = acc[:e - s]
+            _acc_first(a, z[0, s:e], m[0, s:e])
+            for k in range(1, K):
+                _acc_add(a, z[k, s:e], m[k, s:e])
+            _scale_out(a, w[s:e], scale, x[s:e])
+            for k in range(K):
+                _remask(z[k, s:e], m[k, s:e], a)
+
+    @jit
     def reflect(zf, sy, tiny, half, tf):
         ss = 0.0
         for i in range(sy.shape[0]):
@@ -220,14 +272,14 @@ def _define():
         return ss
 
     @jit
-    def igrad(zf, sy, y):
+    def igrad(zf, y):
         ss = 0.0
         f = 0.0
-        for i in range(sy.shape[0]):
+        for i in range(y.shape[0]):
             re = zf[2 * i]
             im = zf[2 * i + 1]
             p = re * re + im * im
-            d = sy[i] - np.sqrt(p)
+            d = np.sqrt(y[i]) - np.sqrt(p)  # sqrt(y) again rather than reading a stored copy
             ss += d * d
             e = p - y[i]
             f += e * e
@@ -235,7 +287,7 @@ def _define():
             zf[2 * i + 1] = im * e
         return ss, f
 
-    return project, cms, reflect, update, igrad
+    return project, cms, reflect, update, igrad, backproject
 
 
 _JIT = None  # the kernels in use: the compiled ones, or False for the numpy twins
@@ -311,6 +363,17 @@ def conj_mask_sum(z: np.ndarray, mcw: np.ndarray, out: np.ndarray) -> np.ndarray
     return out
 
 
+def backproject_remask(z: np.ndarray, masks: np.ndarray, inv_w: np.ndarray, scale: float,
+                       out: np.ndarray) -> np.ndarray:
+    """out = scale * inv_w * sum_k z[k] conj(masks[k]); then z[k] <- masks[k] * out. Returns out."""
+    k = _jit()
+    if not k:
+        return _np_backproject_remask(z, masks, inv_w, scale, out)
+    K = z.shape[0]
+    k[5](z.reshape(K, -1), masks.reshape(K, -1), _flat(inv_w), inv_w.dtype.type(scale), _flat(out))
+    return out
+
+
 def raar_reflect(z, sqrty, tiny, t) -> float:
     """t = z * (r - 1/2), r = sqrty / (|z| + tiny); return sum (sqrty - |z|)^2."""
     k = _jit()
@@ -332,10 +395,10 @@ def raar_update(z, sqrty, tiny, t, a: float, b: float) -> float:
     return float(k[3](_real_view(z), _flat(sqrty), rt(tiny), rt(0.5), _real_view(t), rt(a), rt(b)))
 
 
-def intensity_gradient(z, sqrty, y) -> tuple[float, float]:
-    """z <- z * (|z|^2 - y) in place; return (sum (sqrty - |z|)^2, sum (|z|^2 - y)^2)."""
+def intensity_gradient(z, y) -> tuple[float, float]:
+    """z <- z * (|z|^2 - y) in place; return (sum (sqrt(y) - |z|)^2, sum (|z|^2 - y)^2)."""
     k = _jit()
     if not k:
-        return _np_intensity_gradient(z, sqrty, y)
-    ss, f = k[4](_real_view(z), _flat(sqrty), _flat(y))
+        return _np_intensity_gradient(z, y)
+    ss, f = k[4](_real_view(z), _flat(y))
     return float(ss), float(f)

@@ -70,6 +70,25 @@ def test_conj_mask_sum_matches_numpy(dtype, rtol, k, n, seed):
 
 
 @pytest.mark.parametrize("dtype,rtol", DTYPES)
+@settings(deadline=None)
+@given(k=st.integers(1, 9), n=st.integers(1, 5000), seed=st.integers(0, 2**16))
+def test_backproject_remask_matches_numpy(dtype, rtol, k, n, seed):
+    # n up to 5000 crosses the kernel's 2048-pixel blocks
+    rng = np.random.default_rng(seed)
+    z, inv_w, rdt = random_case(rng, (k, n), dtype)
+    inv_w = np.ascontiguousarray(inv_w[0])  # one weight per pixel
+    m, _, _ = random_case(rng, (k, n), dtype)
+    out = np.empty(n, dtype)
+    (_, (zj, _, _, _, oj)), (_, (zn, _, _, _, on)) = both("backproject_remask", z, m, inv_w, 1.8, out)
+    np.testing.assert_allclose(oj, on, rtol=10 * rtol, atol=10 * rtol * np.abs(on).max())
+    np.testing.assert_allclose(zj, zn, rtol=10 * rtol, atol=10 * rtol * np.abs(zn).max())
+    # numpy's own sum as the reference, and z now holds each mask times the result
+    ref = 1.8 * inv_w * np.sum(z.astype(np.complex128) * np.conj(m), axis=0)
+    np.testing.assert_allclose(oj, ref, rtol=10 * rtol, atol=10 * rtol * np.abs(ref).max())
+    np.testing.assert_allclose(zj, m * oj, rtol=10 * rtol, atol=10 * rtol * np.abs(zj).max())
+
+
+@pytest.mark.parametrize("dtype,rtol", DTYPES)
 def test_raar_kernels_match_numpy(dtype, rtol):
     rng = np.random.default_rng(3)
     z, sy, rdt = random_case(rng, (3, 16, 20), dtype)
@@ -89,7 +108,7 @@ def test_intensity_gradient_matches_numpy(dtype, rtol):
     rng = np.random.default_rng(4)
     z, sy, _ = random_case(rng, (2, 8, 8), dtype)
     y = sy * sy
-    ((ss_j, f_j), (zj, *_)), ((ss_n, f_n), (zn, *_)) = both("intensity_gradient", z, sy, y)
+    ((ss_j, f_j), (zj, *_)), ((ss_n, f_n), (zn, *_)) = both("intensity_gradient", z, y)
     assert ss_j == pytest.approx(ss_n, rel=50 * rtol) and f_j == pytest.approx(f_n, rel=50 * rtol)
     np.testing.assert_allclose(zj, zn, rtol=10 * rtol, atol=10 * rtol * np.abs(zn).max())
 
@@ -131,6 +150,33 @@ def test_solvers_agree_with_and_without_the_compiled_kernels():
         r = solve(y, m, method=method, iterations=40, dtype=np.complex128, seed=0)
         assert relative_error(ref.estimate, r.estimate) < 1e-9, method
         np.testing.assert_allclose(r.residuals, ref.residuals, rtol=1e-8)
+
+
+@pytest.mark.parametrize("near_field", [False, True])
+def test_single_chunk_fused_loops_match_the_chunked_loops(near_field):
+    """ER and RAAR fuse the conjugate-mask sum with the next mask multiply when the masks are not
+    split over threads and no constraint acts; both ways give the same iterates to rounding."""
+    from maskrun.reconstruct import NearField, forward_near_field
+    from maskrun.reconstruct import solvers as S
+
+    rng = np.random.default_rng(6)
+    x = rng.standard_normal((32, 32)) + 1j * rng.standard_normal((32, 32))
+    m = octanary_masks(6, x.shape, seed=3)
+    prop = NearField(wavelength_m=633e-9, pixel_pitch_m=8e-6, distance_m=2e-3) if near_field else None
+    ws = S.Workspace(m, np.complex128, threads=1, propagation=prop)
+    ws.set_intensities(forward(x, m) if prop is None else forward_near_field(x, m, prop))
+    never = S._Constraints(None, False, x.shape, np.complex128)
+    x0 = x * 1.05 + 0.05
+    for runner in (S._run_er, S._run_raar):
+        fused_res, split_res = [], []
+        fused, _ = runner(ws, x0, 30, never, fused_res, S._Stopper(-1.0, 0.0), None, None, [])
+        ws._set_threads(2)  # the chunked loops (two mask chunks)
+        try:
+            split, _ = runner(ws, x0, 30, never, split_res, S._Stopper(-1.0, 0.0), None, None, [])
+        finally:
+            ws._set_threads(1)
+        assert relative_error(split, fused) < 1e-12, runner.__name__
+        np.testing.assert_allclose(fused_res, split_res, rtol=1e-10)
 
 
 def test_maskrun_jit_0_selects_the_numpy_path_in_a_real_process():

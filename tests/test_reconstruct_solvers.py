@@ -70,6 +70,23 @@ def test_complex64_path_reaches_single_precision_target():
     assert relative_error(x, r.estimate) < 1e-5
 
 
+@pytest.mark.parametrize("dtype", [np.complex64, np.complex128])
+def test_iterates_stay_in_the_working_precision(dtype):
+    """The returned estimate is cast to the requested dtype at the end, which would hide an iterate
+    promoted to double inside a method (a numpy float64 scalar in an update does that): single
+    precision would then run at double-precision cost. Check the iterate each method returns."""
+    from maskrun.reconstruct import solvers as S
+
+    x = camera_object(16).astype(dtype)
+    m = octanary_masks(6, x.shape, seed=1)
+    ws = S.Workspace(m, dtype)
+    ws.set_intensities(forward(x, m))
+    cons = S._Constraints(None, False, x.shape, dtype)
+    for runner in (S._run_er, S._run_raar, S._run_wf, S._run_hybrid):
+        out, _ = runner(ws, x * 1.01, 5, cons, [], S._Stopper(-1.0, 0.0), None, None, [])
+        assert out.dtype == dtype, runner.__name__
+
+
 def test_truth_tracking_and_starting_estimate():
     x = camera_object(24)
     m = octanary_masks(8, x.shape, seed=4)
