@@ -239,15 +239,21 @@ def _define():
                 _remask(z[k, s:e], m[k, s:e], a)
 
     @jit
+    def _reflection(re, im, syi, tiny, half):
+        # for one pixel: the squared residual (sqrt(y) - |z|)^2 and the factor r - 1/2 of the
+        # reflection t = z (r - 1/2), r = sqrt(y) / (|z| + tiny)
+        a = np.sqrt(re * re + im * im)
+        d = syi - a
+        return d * d, syi / (a + tiny) - half
+
+    @jit
     def reflect(zf, sy, tiny, half, tf):
         ss = 0.0
         for i in range(sy.shape[0]):
             re = zf[2 * i]
             im = zf[2 * i + 1]
-            a = np.sqrt(re * re + im * im)
-            d = sy[i] - a
-            ss += d * d
-            h = sy[i] / (a + tiny) - half
+            d2, h = _reflection(re, im, sy[i], tiny, half)
+            ss += d2
             tf[2 * i] = re * h
             tf[2 * i + 1] = im * h
         return ss
@@ -263,10 +269,8 @@ def _define():
             im = im * s + tf[2 * i + 1]
             zf[2 * i] = re
             zf[2 * i + 1] = im
-            m = np.sqrt(re * re + im * im)
-            d = sy[i] - m
-            ss += d * d
-            h = sy[i] / (m + tiny) - half
+            d2, h = _reflection(re, im, sy[i], tiny, half)
+            ss += d2
             tf[2 * i] = re * h
             tf[2 * i + 1] = im * h
         return ss
