@@ -139,8 +139,14 @@ def _compile():
     """The compiled kernels (made once per process)."""
     global _COMPILED
     if _COMPILED is None:
-        kernels = _define()
-        _warm_up(kernels)
+        try:
+            kernels = _define(cache=True)
+            _warm_up(kernels)
+        except (RuntimeError, OSError):
+            # numba finds no writable place for its cache (a read-only install and no writable home
+            # folder): compile in memory, once per process, rather than fall back to numpy
+            kernels = _define(cache=False)
+            _warm_up(kernels)
         _COMPILED = kernels
     return _COMPILED
 
@@ -166,15 +172,15 @@ def _warm_up(k) -> None:
         k[5](z, t, sy, one, np.empty(2, cdt))
 
 
-def _define():
-    """Define the numba kernels (compiled lazily, per dtype, at first call; cached on disk)."""
+def _define(cache: bool = True):
+    """Define the numba kernels (compiled per dtype at first call; cached on disk if ``cache``)."""
     import numba
 
     # reassoc lets the sums vectorise; contract allows fused multiply-add. No assumptions about
     # NaN or infinity (they must propagate so the callers can report them), no approximate
     # functions. error_model="numpy": division follows IEEE rules instead of raising, which is
     # also what lets the loops vectorise.
-    jit = numba.njit(fastmath={"reassoc", "contract"}, nogil=True, error_model="numpy", cache=True)
+    jit = numba.njit(fastmath={"reassoc", "contract"}, nogil=True, error_model="numpy", cache=cache)
 
     @jit
     def project(zf, sy, tiny):

@@ -130,6 +130,15 @@ def test_zero_field_stays_finite_and_nan_propagates(jit):
         kernels.use_jit(None)
 
 
+def test_kernels_also_compile_without_the_disk_cache():
+    # the path taken when numba finds no writable cache folder (read-only install, no writable home)
+    fresh = kernels._define(cache=False)
+    kernels._warm_up(fresh)
+    z = np.full((1, 3), 3 + 4j, np.complex64)
+    ss = fresh[0](z.reshape(-1).view(np.float32), np.full(3, 10.0, np.float32), np.float32(1e-30))
+    assert ss == pytest.approx(3 * 25.0) and np.allclose(z, 10 * (3 + 4j) / 5)
+
+
 def test_non_contiguous_input_is_refused_not_copied():
     z = np.ones((2, 8, 8), np.complex64)[:, ::2]
     with pytest.raises(ValueError, match="C-contiguous"):
