@@ -3,6 +3,8 @@
 The reference for every kernel is the same arithmetic written with numpy's own ufuncs
 (np.abs, np.divide, np.multiply, np.sum): a general-purpose reference library, and the
 code path used when numba is missing.
+Source: Harris et al., "Array programming with NumPy", Nature 585, 2020 (the library whose
+ufuncs serve as the reference here).
 """
 import os
 import subprocess
