@@ -1,6 +1,6 @@
 """Reconstruction benchmark: prints the measured figures quoted in the notes.
 
-Run:  .venv/bin/python bench/recon_bench.py   (about 2-4 minutes on 2 cores)
+Run:  .venv/bin/python bench/recon_bench.py   (about 4-5 minutes on 2 cores)
 
 (a) cost of one iteration against the floor of 2K FFT units (time per
     iteration / time of K forward + K inverse unitary FFTs of the same size
