@@ -212,7 +212,8 @@ def _simulated_optics(cfg: BenchConfig, masks: np.ndarray, sensor_shape):
     from maskrun.simulators.sample import phase_target
 
     sample = phase_target(tuple(cfg.grid.shape), wavelength_m=cfg.laser.wavelength_m)
-    optics = SimulatedOptics(sample.field, masks, cfg.simulation.photon_rate_per_s, sensor_shape)
+    optics = SimulatedOptics(sample.field, masks, cfg.simulation.photon_rate_per_s, sensor_shape,
+                             mask_offset_px=cfg.simulation.modulator_offset_px)
     return optics, optics.truth_field()
 
 

@@ -36,6 +36,7 @@ __all__ = [
     "binary_amplitude_masks",
     "load_masks",
     "mask_weight",
+    "shift_masks",
     "OCTANARY_PHASES",
     "OCTANARY_AMPLITUDES",
     "OCTANARY_AMPLITUDE_PROBABILITIES",
@@ -164,3 +165,29 @@ def mask_weight(masks) -> np.ndarray:
     """Per-pixel illumination sum_k |m_k|^2 (H, W), float64."""
     m = np.asarray(masks)
     return np.sum(m.real.astype(np.float64) ** 2 + m.imag.astype(np.float64) ** 2, axis=0)
+
+
+def shift_masks(masks, offset_px) -> np.ndarray:
+    """The masks as they land on the field when the modulator image is displaced by
+    ``offset_px = (rows, cols)`` grid pixels (positive: towards higher indices).
+
+    Periodic, and linear between pixels: a field pixel that straddles two modulator pixels sees
+    each in proportion to its overlap (the area weighting of box-shaped pixels). Whole-pixel
+    offsets are exact rolls. Returns complex128 of the input's shape (K, H, W).
+    """
+    m = np.asarray(masks)
+    if m.ndim != 3:
+        raise ReconstructionInputError(f"masks must be (K, H, W); got shape {m.shape}.")
+    offset = tuple(float(o) for o in offset_px)
+    if len(offset) != 2 or not all(np.isfinite(offset)):
+        raise ReconstructionInputError(f"offset_px must be two finite numbers (rows, cols); got {offset_px!r}.")
+    out = m.astype(np.complex128, copy=True)
+    for axis, o in zip((1, 2), offset):
+        whole = int(np.floor(o))
+        frac = o - whole
+        rolled = np.roll(out, whole, axis=axis)
+        if frac > 0.0:
+            out = (1.0 - frac) * rolled + frac * np.roll(rolled, 1, axis=axis)
+        else:
+            out = rolled
+    return out

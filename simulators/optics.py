@@ -42,6 +42,9 @@ class SimulatedOptics:
         ``mean_k sum_pixels |F(m_k x)|^2 == photon_rate_per_s``; for unit-energy
         masks this is the photon rate with a blank mask too).
     sensor_shape: (rows, cols) of the camera sensor; must be at least the grid shape.
+    mask_offset_px: (rows, cols) displacement of the modulator image on the field, in grid
+        pixels: a misregistered modulator. The masks given are the designed ones; the field
+        sees ``maskrun.reconstruct.masks.shift_masks(masks, mask_offset_px)``. (0, 0) = registered.
 
     State (properties, lock-protected): ``shutter_open`` (False at start),
     ``interlock_closed`` (True at start = doors shut, safe), ``shown_mask``
@@ -52,7 +55,7 @@ class SimulatedOptics:
     close the shutter the moment the interlock opens.
     """
 
-    def __init__(self, sample, masks, photon_rate_per_s: float, sensor_shape):
+    def __init__(self, sample, masks, photon_rate_per_s: float, sensor_shape, mask_offset_px=(0.0, 0.0)):
         sample = np.asarray(sample)
         masks = np.asarray(masks)
         if sample.ndim != 2:
@@ -83,7 +86,8 @@ class SimulatedOptics:
         self._grid_shape = (int(sample.shape[0]), int(sample.shape[1]))
         self._sensor_shape = sensor
         self._photon_rate_per_s = rate
-        self._masks = masks.astype(np.complex128, copy=True)
+        self._mask_offset_px = (float(mask_offset_px[0]), float(mask_offset_px[1]))
+        self._masks = self._landed(masks)
         self._sample = sample.astype(np.complex128, copy=True)
         self._scale = self._compute_scale()
         self._patterns: dict[int | None, np.ndarray] = {}
@@ -203,8 +207,22 @@ class SimulatedOptics:
                 self._scale = self._compute_scale()
             self._patterns.clear()
 
+    def _landed(self, masks) -> np.ndarray:
+        """The masks as they land on the field (the designed ones shifted by the offset)."""
+        if self._mask_offset_px == (0.0, 0.0):
+            return np.asarray(masks).astype(np.complex128, copy=True)
+        from maskrun.reconstruct.masks import shift_masks
+
+        return shift_masks(masks, self._mask_offset_px)
+
+    @property
+    def mask_offset_px(self) -> tuple[float, float]:
+        """(rows, cols) displacement of the modulator image on the field (the simulated truth)."""
+        return self._mask_offset_px
+
     @property
     def masks(self) -> np.ndarray:
+        """The masks as they land on the field (designed masks shifted by ``mask_offset_px``)."""
         with self._lock:
             return self._masks.copy()
 
@@ -214,7 +232,7 @@ class SimulatedOptics:
         if masks.ndim != 3 or masks.shape[1:] != self._grid_shape or masks.shape[0] < 1:
             raise ValueError(f"masks must have shape (K, {self._grid_shape[0]}, {self._grid_shape[1]}), got {masks.shape}")
         with self._lock:
-            self._masks = masks.astype(np.complex128, copy=True)
+            self._masks = self._landed(masks)
             self._scale = self._compute_scale()
             self._patterns.clear()
             if self._shown_mask is not None and self._shown_mask >= masks.shape[0]:
