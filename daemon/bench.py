@@ -121,7 +121,7 @@ def build_bench(cfg: BenchConfig) -> Bench:
                            cfg.config_dir / cfg.masks.path if cfg.masks.path else None)
     except (ValueError, OSError) as exc:
         raise ConfigError(src, [("masks", str(exc))]) from None
-    context = BenchContext(config_dir=str(cfg.config_dir))
+    context = BenchContext(config_dir=str(cfg.config_dir), wavelength_m=cfg.laser.wavelength_m)
     firmware = []
     try:
         camera = _driver("camera", "camera", cfg.camera, context, src)
@@ -144,6 +144,11 @@ def build_bench(cfg: BenchConfig) -> Bench:
                 firmware.append(handle)
                 context.ports[name] = handle.port
         modulator = _driver("modulator", "modulator", cfg.modulator, context, src)
+        try:  # a mask family the device cannot impose is a config error, before any notice or device
+            modulator.check_masks(cfg.masks.family, masks)
+        except DeviceError as exc:
+            raise ConfigError(src, [("masks.family" if "family" in exc.detail else "modulator.settings",
+                                     f"{exc.detail} ({exc.hint})")]) from None
         safety = _driver("safety", "safety", cfg.safety, context, src)
     except BaseException:
         for fw in firmware:

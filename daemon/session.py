@@ -35,6 +35,9 @@ def run_header(bench: Bench, ack: Acknowledgement, run_name: str, plan: RunPlan 
     profile = str((cfg.config_dir / cfg.response.profile).resolve()) if cfg.response.profile else ""
     extra.update(response_gain_dn_per_e=float(resp.gain_dn_per_e), response_offset_dn=float(resp.offset_dn),
                  response_quantum_efficiency=float(resp.quantum_efficiency), response_profile=profile)
+    describe = getattr(bench.modulator, "describe", None)  # e.g. the display modulator's response and mapping
+    if callable(describe):
+        extra["modulator_json"] = json.dumps(describe())
     return RunHeader(
         run_name=run_name,
         config_toml=cfg.source_text,

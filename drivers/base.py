@@ -58,11 +58,13 @@ class BenchContext:
         (e.g. {'modulator': '/dev/pts/5'}); a driver setting port = 'sim:modulator'
         resolves through it.
     config_dir: folder of the bench config, for resolving relative file paths.
+    wavelength_m: the laser's wavelength, metres (None when not known).
     """
 
     optics: Any = None
     ports: dict[str, str] = dataclasses.field(default_factory=dict)
     config_dir: str = "."
+    wavelength_m: float | None = None  # the laser's ([laser] wavelength_m), for drivers whose response depends on it
 
     def resolve_port(self, port: str) -> str:
         if port.startswith("sim:"):
@@ -236,6 +238,10 @@ class Modulator(Device):
     @abc.abstractmethod
     def ready(self) -> bool:
         """True when the device reports the shown mask is in place."""
+
+    def check_masks(self, family: str, masks: np.ndarray) -> None:
+        """Raise DeviceMisconfigured when this device cannot impose the mask family ``family`` (or these
+        masks), naming the families it can; called when the bench is built from the config. Default: any."""
 
 
 class SafetyBox(Device):

@@ -1,0 +1,439 @@
+"""Modulator driver ``display``: a phase SLM or a DMD driven as a monitor of the X server.
+
+Most liquid-crystal phase SLMs and many DMD kits take an 8-bit image on a display output
+(common practice, no source). This driver shows mask k as a borderless full-screen image on one
+chosen screen. The images are computed when the masks are loaded (``display_images``: phase
+response, wavefront correction, blazed grating, mask -> device pixel mapping; or on/off levels
+for a DMD) and uploaded into the X server, so ``show(k)`` is a buffer swap. ``show`` returns only
+once the X server reports the image presented (Present extension: the refresh it reached the
+screen); the sequencer then waits ``settle_s`` (liquid crystal: tens of milliseconds).
+
+The X connection lives in a child process (``display_x11``), so the GUI loop cannot stall
+acquisition or the control socket. When the window is closed, the screen unplugged or the X
+server stops, ``show`` raises ``DeviceDisconnected``: the sequencer closes the shutter, tries
+to reconnect (a new window) and pauses if it cannot.
+
+Needs the optional extra ``display`` (python-xlib): ``pip install 'maskrun[display]'``.
+"""
+
+from __future__ import annotations
+
+import collections
+import hashlib
+import json
+import os
+import queue
+import re
+import shutil
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from pathlib import Path
+from typing import Literal
+
+import numpy as np
+from pydantic import Field, model_validator
+
+from .base import DriverSettings, Modulator
+from .display_images import (BINARY, PHASE, binary_images, check_mask_family, make_mapping, phase_images)
+from .errors import DeviceDisconnected, DeviceFault, DeviceMisconfigured, DeviceTimeout
+from .modulator_profile import ModulatorProfile, ModulatorProfileError, linear_profile
+
+__all__ = ["DisplayModulator", "choose_screen", "load_correction"]
+
+_GEOMETRY = re.compile(r"^(\d+)x(\d+)\+(\d+)\+(\d+)$")
+
+
+def _screen_line(s: dict) -> str:
+    return (f"  {s['index']}: {s['label']}  {s['width']}x{s['height']}+{s['x']}+{s['y']}"
+            f"{'  (primary)' if s.get('primary') else ''}")
+
+
+def label_screens(screens: list[dict]) -> list[dict]:
+    """Give every screen a unique label: its monitor name, qualified 'S/NAME' by the X screen when
+    the name repeats (as with several X screens of one server)."""
+    counts = collections.Counter(s["name"] for s in screens)
+    return [{**s, "label": s["name"] if counts[s["name"]] == 1 else f"{s['x_screen']}/{s['name']}"} for s in screens]
+
+
+def choose_screen(spec, screens: list[dict]) -> dict:
+    """The screen ``spec`` names: an index (int or digits), a name ('HDMI-1', '1/screen'), or a
+    geometry 'WxH+X+Y' (optionally 'S/WxH+X+Y'). DeviceMisconfigured listing the screens otherwise."""
+    screens = label_screens(screens)
+    listing = "\n".join(_screen_line(s) for s in screens)
+    hint = "set [modulator.settings] screen to one of the indices, names or geometries listed"
+    if spec is None or (isinstance(spec, str) and not spec.strip()):
+        raise DeviceMisconfigured(f"no screen chosen for the modulator; the X server has:\n{listing}", device="modulator",
+                                  hint=hint)
+    if isinstance(spec, int) or (isinstance(spec, str) and spec.strip().isdigit()):
+        i = int(spec)
+        if 0 <= i < len(screens):
+            return screens[i]
+        raise DeviceMisconfigured(f"there is no screen {i}; the X server has:\n{listing}", device="modulator", hint=hint)
+    text = spec.strip()
+    x_screen, rest = None, text
+    if "/" in text and text.split("/", 1)[0].isdigit():
+        x_screen, rest = int(text.split("/", 1)[0]), text.split("/", 1)[1]
+    pool = [s for s in screens if x_screen is None or s["x_screen"] == x_screen]
+    m = _GEOMETRY.match(rest)
+    if m:
+        w, h, x, y = (int(v) for v in m.groups())
+        found = [s for s in pool if (s["width"], s["height"], s["x"], s["y"]) == (w, h, x, y)]
+    else:
+        found = [s for s in pool if s["label"] == text or s["name"] == rest]
+    if len(found) == 1:
+        return found[0]
+    if len(found) > 1:
+        raise DeviceMisconfigured(f"screen {spec!r} matches {len(found)} screens; the X server has:\n{listing}",
+                                  device="modulator", hint="give the index or the 'S/NAME' label instead")
+    raise DeviceMisconfigured(f"no screen {spec!r} on the X server; it has:\n{listing}", device="modulator", hint=hint)
+
+
+def load_correction(path: Path, grey_levels_per_2pi: float) -> np.ndarray:
+    """A wavefront-correction image as phase in radians (float64, device pixels).
+
+    .npy of floats: radians. .npy of integers or an 8-bit .png (as makers supply them): grey
+    levels, phase = 2π · grey / grey_levels_per_2pi."""
+    try:
+        if path.suffix.lower() == ".npy":
+            img = np.load(path, allow_pickle=False)
+        elif path.suffix.lower() == ".png":
+            import matplotlib.image
+
+            img = matplotlib.image.imread(str(path))
+            if img.dtype.kind == "f":  # matplotlib gives PNG as floats in 0..1
+                img = np.round(img * 255).astype(np.int64)
+        else:
+            raise DeviceMisconfigured(f"{path}: a correction image must be .npy or .png", device="modulator",
+                                      hint="save it as .npy (radians, or integer grey levels) or as an 8-bit PNG")
+    except (OSError, ValueError) as exc:
+        raise DeviceMisconfigured(f"{path}: cannot read the wavefront-correction image ({exc})", device="modulator",
+                                  hint="check the path in [modulator.settings] correction") from None
+    if img.ndim == 3:
+        if not (np.all(img[..., 0] == img[..., 1]) and np.all(img[..., 0] == img[..., 2])):
+            raise DeviceMisconfigured(f"{path}: the correction image is in colour; it must be grey", device="modulator",
+                                      hint="give a single-channel image")
+        img = img[..., 0]
+    if img.ndim != 2:
+        raise DeviceMisconfigured(f"{path}: the correction image has shape {img.shape}, expected (rows, cols)",
+                                  device="modulator", hint="give one 2-D image of the modulator's resolution")
+    if img.dtype.kind == "f":
+        if not np.all(np.isfinite(img)):
+            raise DeviceMisconfigured(f"{path}: the correction image has NaN or infinite values", device="modulator",
+                                      hint="give finite phases in radians")
+        return img.astype(np.float64)
+    return img.astype(np.float64) * (2 * np.pi / float(grey_levels_per_2pi))
+
+
+class DisplayModulator(Modulator):
+    """Phase SLM or DMD driven as a display: full-screen grey images on one screen of the X server."""
+
+    class Settings(DriverSettings):
+        screen: int | str | None = Field(None, description="the modulator's screen: index, name (e.g. 'HDMI-1', "
+                                         "'1/screen') or geometry 'WxH+X+Y'; 'maskrun screens' lists them")
+        x_display: str | None = Field(None, description="X display, e.g. ':0' (default: $DISPLAY)")
+        device: Literal["phase", "binary_amplitude"] = Field(
+            "phase", description="'phase': a phase-only SLM (grey level = phase); 'binary_amplitude': a DMD (on/off)")
+        grey_levels_per_2pi: float = Field(256.0, gt=0, description="nominal linear response: grey levels for 2 pi "
+                                           "(used when no profile is given)")
+        profile: str | None = Field(None, description="measured phase response (modulator profile JSON); overrides "
+                                    "grey_levels_per_2pi")
+        correction: str | None = Field(None, description="wavefront-correction image (.npy radians or integer grey, "
+                                       ".png 8-bit grey), full screen size, added modulo 2 pi")
+        correction_grey_levels_per_2pi: float | None = Field(
+            None, gt=0, description="grey levels for 2 pi in an integer correction image (default grey_levels_per_2pi)")
+        blaze_period_px: tuple[float, float] = Field(
+            (0.0, 0.0), description="blazed grating period (rows, cols) in device pixels; 0 = no ramp on that axis")
+        superpixel_px: tuple[int, int] = Field((1, 1), description="device pixels (rows, cols) per mask pixel")
+        offset_px: tuple[int, int] | None = Field(None, description="device pixel (row, col) of the mask's top-left "
+                                                  "corner (default: centred)")
+        active_region_px: tuple[int, int, int, int] | None = Field(
+            None, description="modulated region (row0, col0, rows, cols) in device pixels (default: the mask's footprint)")
+        outside_grey: int = Field(0, ge=0, le=255, description="grey level outside the active region")
+        on_grey: int = Field(255, ge=0, le=255, description="DMD: grey level of an 'on' mask pixel")
+        off_grey: int = Field(0, ge=0, le=255, description="DMD: grey level of an 'off' mask pixel")
+        settle_s: float = Field(0.03, ge=0, description="wait after the image is presented, s (liquid crystal: tens "
+                                "of ms; DMD: about 0)")
+        present_timeout_s: float = Field(2.0, gt=0, description="longest wait for the X server to present an image, s")
+        open_timeout_s: float = Field(30.0, gt=0, description="longest wait to open the screen and upload the images, s")
+        readback_check: bool = Field(False, description="read the screen back after every show and refuse a "
+                                     "mismatch (commissioning; costs a screen read per mask)")
+        presented_log: str | None = Field(None, description="append one JSON line per presented image to this file")
+
+        @model_validator(mode="after")
+        def _device_options(self):
+            if self.device == BINARY:
+                used = [k for k in ("profile", "correction", "correction_grey_levels_per_2pi")
+                        if getattr(self, k) is not None]
+                if any(self.blaze_period_px):
+                    used.append("blaze_period_px")
+                if used:
+                    raise ValueError(f"{', '.join(used)}: a binary-amplitude device (DMD) shows only on/off levels; "
+                                     "these settings are for a phase SLM (device = 'phase')")
+            return self
+
+    def __init__(self, settings, context=None):
+        super().__init__(settings, context)
+        self._proc: subprocess.Popen | None = None
+        self._replies: queue.Queue = queue.Queue()
+        self._lost: str | None = None
+        self._next_id = 0
+        self._stderr: collections.deque = collections.deque(maxlen=40)
+        self.screens: list[dict] = []
+        self.screen: dict | None = None
+        self.mapping = None
+        self.images: np.ndarray | None = None
+        self.image_sha256: list[str] = []
+        self.presented: collections.deque = collections.deque(maxlen=100000)
+        self.shown: int | None = None
+        self._presented_at = -float("inf")
+        self._profile: ModulatorProfile | None = None
+        self._correction: np.ndarray | None = None
+
+    # ------------------------------------------------------------ config time
+    def _path(self, name: str) -> Path:
+        p = Path(name).expanduser()
+        return p if p.is_absolute() else Path(self.context.config_dir) / p
+
+    @property
+    def wavelength_m(self) -> float | None:
+        return getattr(self.context, "wavelength_m", None)
+
+    def phase_profile(self) -> ModulatorProfile:
+        """The phase response in use: the profile file, or the linear table at the laser's wavelength."""
+        if self._profile is None:
+            s = self.settings
+            if s.profile:
+                try:
+                    prof = ModulatorProfile.load(self._path(s.profile))
+                except ModulatorProfileError as exc:
+                    raise DeviceMisconfigured(str(exc), device="modulator",
+                                              hint="measure the response or fix the path in [modulator.settings] profile") from None
+                lam = self.wavelength_m
+                if lam is not None and abs(prof.wavelength_m - lam) > 1e-3 * lam:
+                    raise DeviceMisconfigured(
+                        f"the phase response {s.profile} holds for {prof.wavelength_m * 1e9:.1f} nm, the laser is "
+                        f"{lam * 1e9:.1f} nm (the response depends on the wavelength)", device="modulator",
+                        hint="measure the response at this laser's wavelength, or check [laser] wavelength_m")
+                self._profile = prof
+            else:
+                self._profile = linear_profile(s.grey_levels_per_2pi, self.wavelength_m or 1.0)
+        return self._profile
+
+    def check_masks(self, family: str, masks: np.ndarray) -> None:
+        """Refuse (DeviceMisconfigured) a mask family this device cannot impose; read the profile and the
+        correction image now, so their errors come when the config is read."""
+        check_mask_family(self.settings.device, family, masks)
+        if self.settings.device == PHASE:
+            self.phase_profile()
+            if self.settings.correction and self._correction is None:
+                s = self.settings
+                self._correction = load_correction(self._path(s.correction),
+                                                   s.correction_grey_levels_per_2pi or s.grey_levels_per_2pi)
+
+    # ------------------------------------------------------------ the child process
+    def _spawn(self) -> None:
+        try:
+            import Xlib  # noqa: F401
+        except ImportError:
+            raise DeviceMisconfigured("the display modulator needs python-xlib", device="modulator",
+                                      hint="pip install 'maskrun[display]'") from None
+        env = dict(os.environ)
+        if self.settings.x_display:
+            env["DISPLAY"] = self.settings.x_display
+        if not env.get("DISPLAY"):
+            raise DeviceDisconnected("no X display: DISPLAY is not set and x_display is not given", device="modulator",
+                                     hint="set [modulator.settings] x_display (e.g. ':0') or run where DISPLAY is set")
+        self._replies = queue.Queue()
+        self._lost = None
+        self._proc = subprocess.Popen([sys.executable, "-m", "maskrun.drivers.display_x11"], stdin=subprocess.PIPE,
+                                      stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=env, text=True, bufsize=1)
+        threading.Thread(target=self._read_stdout, args=(self._proc,), daemon=True, name="display-replies").start()
+        threading.Thread(target=self._read_stderr, args=(self._proc,), daemon=True, name="display-stderr").start()
+
+    def _read_stdout(self, proc) -> None:
+        for line in proc.stdout:
+            try:
+                msg = json.loads(line)
+            except json.JSONDecodeError:
+                self._stderr.append(line.rstrip())
+                continue
+            if "lost" in msg:
+                self._lost = msg["lost"]
+            self._replies.put(msg)
+        self._replies.put(None)  # end of the child's output
+
+    def _read_stderr(self, proc) -> None:
+        for line in proc.stderr:
+            self._stderr.append(line.rstrip())
+
+    def _disconnected(self, why: str) -> DeviceDisconnected:
+        tail = "; ".join(list(self._stderr)[-3:])
+        return DeviceDisconnected(f"{why}{' (' + tail + ')' if tail and 'lost' not in why else ''}", device="modulator",
+                                  hint="check that the modulator's screen is connected and switched on and that the "
+                                  "X server runs; the run reconnects or pauses with the shutter closed")
+
+    def _wait(self, want_id: int | None, timeout_s: float, what: str) -> dict:
+        t_end = time.monotonic() + timeout_s
+        while True:
+            left = t_end - time.monotonic()
+            if left <= 0:
+                raise DeviceTimeout(f"{what}: no answer from the X server within {timeout_s:g} s", device="modulator",
+                                    hint="check the X server and the modulator's screen")
+            try:
+                msg = self._replies.get(timeout=left)
+            except queue.Empty:
+                continue
+            if msg is None:
+                self._replies.put(None)
+                raise self._disconnected(f"{what}: the display link ended: {self._lost or 'the display process exited'}")
+            if "lost" in msg:
+                raise self._disconnected(f"{what}: display lost: {msg['lost']}")
+            if want_id is None or msg.get("id") == want_id:
+                return msg
+
+    def _request(self, timeout_s: float, what: str, **req) -> dict:
+        if self._lost:
+            raise self._disconnected(f"{what}: display lost: {self._lost}")
+        if self._proc is None or self._proc.poll() is not None:
+            raise self._disconnected(f"{what}: the display is not open")
+        self._next_id += 1
+        req["id"] = self._next_id
+        try:
+            self._proc.stdin.write(json.dumps(req) + "\n")
+            self._proc.stdin.flush()
+        except (BrokenPipeError, OSError, ValueError):
+            raise self._disconnected(f"{what}: the display process is gone") from None
+        msg = self._wait(self._next_id, timeout_s, what)
+        if "error" in msg:
+            raise DeviceMisconfigured(f"{what}: {msg['error']}", device="modulator")
+        return msg
+
+    # ------------------------------------------------------------ life cycle
+    def open(self) -> None:
+        if self._proc is not None and self._proc.poll() is None and not self._lost:
+            return
+        self.close()
+        self._spawn()
+        try:
+            hello = self._wait(None, self.settings.open_timeout_s, "connecting to the X server")
+            self.screens = label_screens(hello["screens"])
+            self.screen = choose_screen(self.settings.screen, self.screens)
+            self._request(self.settings.open_timeout_s, f"opening screen {self.screen['label']}", op="open",
+                          screen=self.screen["index"])
+        except BaseException:
+            self.close()
+            raise
+
+    def close(self) -> None:
+        proc, self._proc = self._proc, None
+        if proc is None:
+            return
+        if proc.poll() is None:
+            try:
+                proc.stdin.write(json.dumps({"op": "quit"}) + "\n")
+                proc.stdin.flush()
+            except (BrokenPipeError, OSError, ValueError):
+                pass
+            try:
+                proc.wait(5)
+            except subprocess.TimeoutExpired:
+                proc.kill()
+                proc.wait(5)
+        for stream in (proc.stdin, proc.stdout, proc.stderr):
+            try:
+                stream.close()
+            except (OSError, ValueError):
+                pass
+
+    # ------------------------------------------------------------ masks
+    def device_images(self, masks: np.ndarray) -> np.ndarray:
+        """The (K, rows, cols) uint8 images for ``masks`` on the chosen screen (needs open())."""
+        if self.screen is None:
+            raise DeviceDisconnected("the display modulator is not open", device="modulator", hint="open it first")
+        masks = np.asarray(masks)
+        if masks.ndim != 3 or masks.shape[0] < 1:
+            raise DeviceMisconfigured(f"mask set must have shape (K, H, W) with K >= 1, got {masks.shape}",
+                                      device="modulator", hint="check the mask family settings of the run")
+        s = self.settings
+        self.mapping = make_mapping((self.screen["height"], self.screen["width"]), masks.shape[1:], s.superpixel_px,
+                                    s.offset_px, s.active_region_px, s.outside_grey)
+        if s.device == BINARY:
+            return binary_images(masks, self.mapping, s.on_grey, s.off_grey)
+        if s.correction and self._correction is None:
+            self._correction = load_correction(self._path(s.correction),
+                                               s.correction_grey_levels_per_2pi or s.grey_levels_per_2pi)
+        return phase_images(masks, self.mapping, self.phase_profile(), self._correction, s.blaze_period_px)
+
+    def load(self, masks: np.ndarray) -> None:
+        images = self.device_images(masks)
+        folder = tempfile.mkdtemp(prefix="maskrun-display-")
+        try:
+            path = os.path.join(folder, "images.npy")
+            np.save(path, images)
+            reply = self._request(self.settings.open_timeout_s, "uploading the mask images", op="load", path=path)
+        finally:
+            shutil.rmtree(folder, ignore_errors=True)
+        if reply.get("count") != images.shape[0]:
+            raise DeviceFault(f"uploaded {images.shape[0]} images, the display process holds {reply.get('count')}",
+                              device="modulator")
+        self.images = images
+        self.image_sha256 = [hashlib.sha256(np.ascontiguousarray(im).tobytes()).hexdigest() for im in images]
+
+    def show(self, index: int) -> None:
+        index = int(index)
+        if self.images is None:
+            raise DeviceMisconfigured("no masks loaded", device="modulator", hint="call load(masks) before show()")
+        if not 0 <= index < len(self.images):
+            raise DeviceMisconfigured(f"mask {index} outside 0..{len(self.images) - 1}", device="modulator",
+                                      hint="the run asked for a mask that was not loaded")
+        s = self.settings
+        reply = self._request(s.present_timeout_s, f"showing mask {index}", op="show", index=index,
+                              readback=s.readback_check)
+        self._presented_at = time.monotonic()
+        record = {"time_s": time.time(), "index": index, **{k: reply[k] for k in ("serial", "msc", "ust", "mode", "sha256")
+                                                              if k in reply}}
+        self.presented.append(record)
+        if s.presented_log:
+            with open(self._path(s.presented_log), "a", encoding="utf-8") as f:
+                f.write(json.dumps(record) + "\n")
+        if s.readback_check and not (reply.get("match") and reply.get("grey")):
+            self.shown = None
+            raise DeviceFault(f"the screen read back after showing mask {index} is not its image "
+                              f"({'not grey' if not reply.get('grey') else 'other grey levels'})", device="modulator",
+                              hint="another window may cover the modulator's screen, or the X server alters colours "
+                              "(colour management, a compositor's effects); close them")
+        self.shown = index
+
+    @property
+    def settle_s(self) -> float:
+        return float(self.settings.settle_s)
+
+    def ready(self) -> bool:
+        if self._lost:
+            raise self._disconnected(f"display lost: {self._lost}")
+        return self.shown is not None and time.monotonic() - self._presented_at >= self.settings.settle_s
+
+    # ------------------------------------------------------------ record
+    def describe(self) -> dict:
+        """What the run file records: the screen, the mapping, the response and correction used."""
+        s = self.settings
+        out = {"driver": "display", "device": s.device, "settle_s": s.settle_s,
+               "screen": {k: self.screen[k] for k in ("label", "name", "x_screen", "x", "y", "width", "height")}
+               if self.screen else None,
+               "mapping": self.mapping.as_dict() if self.mapping else None,
+               "image_sha256": self.image_sha256}
+        if s.device == BINARY:
+            out.update(on_grey=s.on_grey, off_grey=s.off_grey)
+        else:
+            prof = self.phase_profile()
+            out["response"] = {"source": str(self._path(s.profile)) if s.profile else
+                               f"linear, {s.grey_levels_per_2pi:g} grey levels per 2 pi", **prof.model_dump()}
+            out["blaze_period_px"] = list(s.blaze_period_px)
+            if s.correction:
+                corr = self._correction
+                out["correction"] = {"path": str(self._path(s.correction)),
+                                     "sha256_rad_float64": hashlib.sha256(corr.tobytes()).hexdigest() if corr is not None else None}
+        return out
