@@ -198,7 +198,7 @@ class Presenter:
         if ev.type == X.DestroyNotify and ev.window.id == self.window.id:
             raise Lost("the modulator window was closed (destroyed by another X client)")
         if ev.type == X.UnmapNotify and ev.window.id == self.window.id:
-            raise Lost("the modulator window was unmapped (hidden by another X client)")
+            raise Lost("the modulator window was taken off the screen (unmapped or closed by another X client)")
         if ev.type == X.Expose and ev.window.id == self.window.id and self.shown is not None:
             self.window.copy_area(self.gc, self.pixmaps[self.shown], ev.x, ev.y, ev.width, ev.height, ev.x, ev.y)
         name = getattr(ev, "__class__", type(ev)).__name__
