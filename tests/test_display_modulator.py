@@ -15,7 +15,7 @@ from maskrun.drivers.display_images import check_mask_family
 from maskrun.drivers.modulator_profile import ModulatorProfile, linear_profile
 from maskrun.drivers.registry import build_driver
 from maskrun.reconstruct.masks import binary_amplitude_masks, quantized_phase_masks, random_phase_masks
-from xvfbhelp import screenshot, xvfb_server
+from xvfbhelp import expected_phase_image, screenshot, xvfb_server
 
 pytest.importorskip("Xlib")
 
@@ -39,29 +39,6 @@ def _grey_shot(display, x_screen=1, shape=SCREEN1):
     # every pixel must be grey (R = G = B): the grey level goes out unchanged on all three channels
     assert np.array_equal(rgb[..., 0], rgb[..., 1]) and np.array_equal(rgb[..., 1], rgb[..., 2])
     return rgb[..., 0]
-
-
-def _expected_phase_image(mask, profile, screen_shape, superpixel, offset, active, outside, correction=None,
-                          blaze=(0.0, 0.0)):
-    """The test's own route: upsample with a Kronecker product, paste at the offset, add the
-    correction and ramp over the whole screen, look the phase up in the table, blank outside."""
-    sr, sc = superpixel
-    up = np.kron(np.angle(mask), np.ones((sr, sc)))
-    phase = np.zeros(screen_shape)
-    r0, c0 = offset
-    phase[r0:r0 + up.shape[0], c0:c0 + up.shape[1]] = up
-    rr, cc = np.indices(screen_shape)
-    if correction is not None:
-        phase = phase + correction
-    if blaze[0]:
-        phase = phase + 2 * np.pi * rr / blaze[0]
-    if blaze[1]:
-        phase = phase + 2 * np.pi * cc / blaze[1]
-    grey = profile.grey_for_phase(phase).astype(np.uint8)
-    a0, b0, ah, aw = active
-    inside = (rr >= a0) & (rr < a0 + ah) & (cc >= b0) & (cc < b0 + aw)
-    inside &= (rr >= r0) & (rr < r0 + up.shape[0]) & (cc >= c0) & (cc < c0 + up.shape[1])
-    return np.where(inside, grey, np.uint8(outside))
 
 
 def test_grey_for_phase_is_the_nearest_table_level():
@@ -109,7 +86,7 @@ def test_phase_masks_reach_the_screen_exactly(xserver, tmp_path):
     prof.save(tmp_path / "slm.json")
     correction = rng.uniform(0, 2 * np.pi, SCREEN1)
     np.save(tmp_path / "corr.npy", correction)
-    settings = dict(screen=1, profile="slm.json", correction="corr.npy", blaze_period_px=[0.0, 12.5],
+    settings = dict(screen=1, profile="slm.json", correction="corr.npy", blaze_period_px=[0.0, 12.31],
                     superpixel_px=[4, 3], offset_px=[100, 200], active_region_px=[90, 210, 80, 50], outside_grey=17,
                     readback_check=True, presented_log="shown.jsonl")
     mod = _driver(xserver, tmp_path, **settings)
@@ -120,8 +97,8 @@ def test_phase_masks_reach_the_screen_exactly(xserver, tmp_path):
         for k in (2, 0, 1, 2):
             mod.show(k)
             shot = _grey_shot(xserver)
-            want = _expected_phase_image(masks[k], prof, SCREEN1, (4, 3), (100, 200), (90, 210, 80, 50), 17,
-                                         correction, (0.0, 12.5))
+            want = expected_phase_image(masks[k], prof, SCREEN1, (4, 3), (100, 200), (90, 210, 80, 50), 17,
+                                         correction, (0.0, 12.31))
             assert np.array_equal(shot, want), f"mask {k}: {np.count_nonzero(shot != want)} pixels differ"
             assert mod.ready()
         # the active region is clipped to the mask's footprint (rows 100..195, cols 210..259)

@@ -63,3 +63,28 @@ def screenshot(display: str, x_screen: int, x: int, y: int, width: int, height: 
         return out
     finally:
         d.close()
+
+
+
+def expected_phase_image(mask, profile, screen_shape, superpixel, offset, active, outside, correction=None,
+                         blaze=(0.0, 0.0)) -> np.ndarray:
+    """The grey image a phase SLM should show for ``mask``, computed the test's own way: upsample
+    with a Kronecker product, paste at the offset, add the correction and ramp over the whole
+    screen, look the phase up in the response table, put the fixed level outside."""
+    sr, sc = superpixel
+    up = np.kron(np.angle(mask), np.ones((sr, sc)))
+    phase = np.zeros(screen_shape)
+    r0, c0 = offset
+    phase[r0:r0 + up.shape[0], c0:c0 + up.shape[1]] = up
+    rr, cc = np.indices(screen_shape)
+    if correction is not None:
+        phase = phase + correction
+    if blaze[0]:
+        phase = phase + 2 * np.pi * rr / blaze[0]
+    if blaze[1]:
+        phase = phase + 2 * np.pi * cc / blaze[1]
+    grey = profile.grey_for_phase(phase).astype(np.uint8)
+    a0, b0, ah, aw = active
+    inside = (rr >= a0) & (rr < a0 + ah) & (cc >= b0) & (cc < b0 + aw)
+    inside &= (rr >= r0) & (rr < r0 + up.shape[0]) & (cc >= c0) & (cc < c0 + up.shape[1])
+    return np.where(inside, grey, np.uint8(outside))
