@@ -217,3 +217,19 @@ def _show_until_lost(mod, timeout_s=10.0):
         mod.show(0)
         time.sleep(0.05)
     raise AssertionError("the display loss was never reported")
+
+
+def test_screens_verb_lists_what_the_driver_accepts(xserver):
+    import shutil
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    exe = shutil.which("maskrun") or str(Path(sys.executable).with_name("maskrun"))
+    r = subprocess.run([exe, "screens", "--display", xserver, "--json"], capture_output=True, text=True, timeout=60)
+    assert r.returncode == 0, r.stderr
+    screens = json.loads(r.stdout)
+    assert [(s["index"], s["label"], s["width"], s["height"]) for s in screens] == [(0, "0/screen", 640, 480),
+                                                                                   (1, "1/screen", 800, 600)]
+    r = subprocess.run([exe, "screens", "--display", ":9999"], capture_output=True, text=True, timeout=60)
+    assert r.returncode == 2 and "cannot connect to X display :9999" in r.stderr and "Traceback" not in r.stderr
