@@ -157,3 +157,23 @@ def test_a_family_the_device_cannot_impose_is_refused_when_the_config_is_read(tm
                        "bench.toml")
     with pytest.raises(ConfigError, match="532.0 nm, the laser is 632.8 nm"):
         build_bench(cfg)
+
+
+def test_the_example_display_slm_bench_is_valid():
+    # configs/display-slm.toml: the display modulator's settings validate and its mask family is one
+    # a phase SLM can impose (the camera is the genicam driver, which may not be installed here)
+    from pathlib import Path
+
+    from maskrun.daemon.config import load_config
+    from maskrun.daemon.masks import make_masks
+    from maskrun.drivers import BenchContext
+    from maskrun.drivers.registry import build_driver
+
+    path = Path(__file__).resolve().parents[1] / "configs" / "display-slm.toml"
+    cfg = load_config(path)
+    assert cfg.simulation is None and cfg.camera.driver == "genicam" and cfg.modulator.driver == "display"
+    mod = build_driver("modulator", "display", dict(cfg.modulator.settings),
+                       BenchContext(config_dir=str(path.parent), wavelength_m=cfg.laser.wavelength_m))
+    masks = make_masks(cfg.masks.family, cfg.masks.count, tuple(cfg.grid.shape), cfg.masks.seed, cfg.masks.levels)
+    mod.check_masks(cfg.masks.family, masks)
+    assert mod.settings.superpixel_px[0] * cfg.grid.shape[0] == 512
