@@ -161,7 +161,7 @@ def check_mask_family(kind: str, family: str, masks: np.ndarray | None = None) -
     family 'file', the file's masks), naming the families it can impose."""
     can = ", ".join(_FAMILIES[kind])
     what = _KIND_WORDS[kind]
-    hint = f"choose [masks] family = one of: {can} (file: {_FILE_NEEDS[kind]})"
+    hint = f"change [masks] family (a 'file' must hold {_FILE_NEEDS[kind]}), or drive another modulator"
     if family not in _FAMILIES[kind]:
         why = {"octanary": "its masks have two amplitude levels as well as four phases",
                "binary_amplitude": "its masks switch the amplitude on and off",

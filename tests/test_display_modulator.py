@@ -86,6 +86,8 @@ def test_phase_masks_reach_the_screen_exactly(xserver, tmp_path):
     prof.save(tmp_path / "slm.json")
     correction = rng.uniform(0, 2 * np.pi, SCREEN1)
     np.save(tmp_path / "corr.npy", correction)
+    # a ramp period whose phases never land exactly on an edge of the table lookup's phase bins
+    # (12.5 px would, every 25 px), so the test's own sums cannot round to the other side of one
     settings = dict(screen=1, profile="slm.json", correction="corr.npy", blaze_period_px=[0.0, 12.31],
                     superpixel_px=[4, 3], offset_px=[100, 200], active_region_px=[90, 210, 80, 50], outside_grey=17,
                     readback_check=True, presented_log="shown.jsonl")
