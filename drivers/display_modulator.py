@@ -185,6 +185,7 @@ class DisplayModulator(Modulator):
         self.screen: dict | None = None
         self.mapping = None
         self.images: np.ndarray | None = None
+        self._images_key = None
         self.image_sha256: list[str] = []
         self.presented: collections.deque = collections.deque(maxlen=100000)
         self.shown: int | None = None
@@ -306,7 +307,13 @@ class DisplayModulator(Modulator):
             self._proc.stdin.flush()
         except (BrokenPipeError, OSError, ValueError):
             raise self._disconnected(f"{what}: the display process is gone") from None
-        msg = self._wait(self._next_id, timeout_s, what)
+        try:
+            msg = self._wait(self._next_id, timeout_s, what)
+        except DeviceTimeout:
+            # a display process that does not answer is replaced: the next request finds the device not
+            # open (DeviceDisconnected), and the sequencer's reconnect opens a new window
+            self._kill()
+            raise
         if "error" in msg:
             raise DeviceMisconfigured(f"{what}: {msg['error']}", device="modulator")
         return msg
@@ -326,6 +333,13 @@ class DisplayModulator(Modulator):
         except BaseException:
             self.close()
             raise
+
+    def _kill(self) -> None:
+        proc = self._proc
+        if proc is not None and proc.poll() is None:
+            proc.kill()
+            proc.wait(5)
+        self.close()
 
     def close(self) -> None:
         proc, self._proc = self._proc, None
@@ -368,7 +382,13 @@ class DisplayModulator(Modulator):
         return phase_images(masks, self.mapping, self.phase_profile(), self._correction, s.blaze_period_px)
 
     def load(self, masks: np.ndarray) -> None:
-        images = self.device_images(masks)
+        masks = np.asarray(masks)
+        key = (hashlib.sha256(np.ascontiguousarray(masks).tobytes()).hexdigest(), masks.shape, masks.dtype.str,
+               None if self.screen is None else (self.screen["width"], self.screen["height"]))
+        if self.images is not None and key == self._images_key:
+            images = self.images  # a reconnect to the same screen: the images are already computed
+        else:
+            images = self.device_images(masks)
         folder = tempfile.mkdtemp(prefix="maskrun-display-")
         try:
             path = os.path.join(folder, "images.npy")
@@ -379,7 +399,7 @@ class DisplayModulator(Modulator):
         if reply.get("count") != images.shape[0]:
             raise DeviceFault(f"uploaded {images.shape[0]} images, the display process holds {reply.get('count')}",
                               device="modulator")
-        self.images = images
+        self.images, self._images_key = images, key
         self.image_sha256 = [hashlib.sha256(np.ascontiguousarray(im).tobytes()).hexdigest() for im in images]
 
     def show(self, index: int) -> None:

@@ -5,6 +5,7 @@ image it computes itself from the mask, the response table, the correction and t
 from __future__ import annotations
 
 import json
+import os
 import time
 
 import numpy as np
@@ -209,6 +210,34 @@ def test_display_lost_raises_the_disconnect_error(tmp_path):
             _show_until_lost(mod)
         with pytest.raises(DeviceDisconnected):
             mod.open()
+        mod.close()
+
+
+def test_a_stuck_x_server_times_out_and_the_display_is_reopened(tmp_path):
+    import signal
+
+    from maskrun.drivers import DeviceTimeout
+
+    with xvfb_server("320x240x24") as (display, proc):
+        mod = _driver(display, tmp_path, screen=0, present_timeout_s=0.5)
+        mod.open()
+        mod.load(random_phase_masks(2, (8, 8)))
+        mod.show(0)
+        os.kill(proc.pid, signal.SIGSTOP)  # the X server stops answering
+        try:
+            t0 = time.monotonic()
+            with pytest.raises(DeviceTimeout, match="no answer from the X server within 0.5 s"):
+                mod.show(1)
+            assert time.monotonic() - t0 < 3.0
+        finally:
+            os.kill(proc.pid, signal.SIGCONT)
+        # the unresponsive display process was replaced: the next show asks for a reconnect
+        with pytest.raises(DeviceDisconnected, match="not open"):
+            mod.show(1)
+        mod.open()
+        mod.load(random_phase_masks(2, (8, 8)))
+        mod.show(1)
+        assert list(mod.presented)[-1]["index"] == 1
         mod.close()
 
 
