@@ -10,9 +10,11 @@ import time
 
 import numpy as np
 import pytest
+from hypothesis import given, settings, strategies as st
 
 from maskrun.drivers import BenchContext, DeviceDisconnected, DeviceMisconfigured
 from maskrun.drivers.display_images import check_mask_family
+from maskrun.drivers.display_modulator import choose_screen
 from maskrun.drivers.modulator_profile import ModulatorProfile, linear_profile
 from maskrun.drivers.registry import build_driver
 from maskrun.reconstruct.masks import binary_amplitude_masks, quantized_phase_masks, random_phase_masks
@@ -64,17 +66,19 @@ def test_screens_are_listed_and_an_unknown_screen_is_refused(xserver, tmp_path):
     text = str(err.value)
     # both X screens of the server are listed, by index, label and geometry
     assert "no screen 'HDMI-7'" in text and "0: 0/screen  640x480+0+0" in text and "1: 1/screen  800x600+0+0" in text
-    for spec in (5, "3/screen", "1024x768+0+0", None):
+    # the other ways of naming a screen, against the list the X server gave
+    mod = _driver(xserver, tmp_path, screen="800x600+0+0")
+    mod.open()
+    try:
+        assert mod.screen["x_screen"] == 1 and (mod.screen["width"], mod.screen["height"]) == (800, 600)
+        listed = mod.screens
+    finally:
+        mod.close()
+    for spec in (5, "3/screen", "1024x768+0+0", None, "screen"):
         with pytest.raises(DeviceMisconfigured, match="800x600"):
-            _driver(xserver, tmp_path, screen=spec).open()
-    # by name, index and geometry: the same screen
-    for spec in ("1/screen", 1, "1", "800x600+0+0", "1/800x600+0+0"):
-        mod = _driver(xserver, tmp_path, screen=spec)
-        mod.open()
-        try:
-            assert mod.screen["x_screen"] == 1 and (mod.screen["width"], mod.screen["height"]) == (800, 600)
-        finally:
-            mod.close()
+            choose_screen(spec, listed)
+    for spec in ("1/screen", 1, "1", "1/800x600+0+0"):
+        assert choose_screen(spec, listed)["index"] == 1
 
 
 def test_phase_masks_reach_the_screen_exactly(xserver, tmp_path):
@@ -264,3 +268,27 @@ def test_screens_verb_lists_what_the_driver_accepts(xserver):
                                                                                    (1, "1/screen", 800, 600)]
     r = subprocess.run([exe, "screens", "--display", ":9999"], capture_output=True, text=True, timeout=60)
     assert r.returncode == 2 and "cannot connect to X display :9999" in r.stderr and "Traceback" not in r.stderr
+
+
+@given(sr=st.integers(1, 4), sc=st.integers(1, 4), dr=st.integers(0, 12), dc=st.integers(0, 12),
+       a=st.tuples(st.integers(0, 40), st.integers(0, 40), st.integers(1, 50), st.integers(1, 50)),
+       outside=st.integers(0, 255), per2pi=st.sampled_from([256, 230, 200]))
+@settings(max_examples=40, deadline=None)
+def test_the_mapping_matches_the_tests_own_placement(sr, sc, dr, dc, a, outside, per2pi):
+    from maskrun.drivers.display_images import make_mapping, phase_images
+
+    screen = (60, 70)
+    masks = quantized_phase_masks(2, (9, 7), levels=8, seed=sr * 10 + sc)
+    try:
+        mapping = make_mapping(screen, (9, 7), (sr, sc), (dr, dc), a, outside)
+    except DeviceMisconfigured:
+        # refused only when the active region leaves the screen or misses the mask's footprint
+        inside = a[0] + a[2] <= 60 and a[1] + a[3] <= 70
+        overlap = (a[0] < dr + 9 * sr and dr < a[0] + a[2] and a[1] < dc + 7 * sc and dc < a[1] + a[3])
+        assert not (inside and overlap)
+        return
+    prof = linear_profile(per2pi, WAVELENGTH_M)
+    got = phase_images(masks, mapping, prof)
+    for k in range(2):
+        want = expected_phase_image(masks[k], prof, screen, (sr, sc), (dr, dc), a, outside)
+        assert np.array_equal(got[k], want)
