@@ -160,6 +160,9 @@ class DisplayModulator(Modulator):
         open_timeout_s: float = Field(30.0, gt=0, description="longest wait to open the screen and upload the images, s")
         readback_check: bool = Field(False, description="read the screen back after every show and refuse a "
                                      "mismatch (commissioning; costs a screen read per mask)")
+        covered_check: bool = Field(False, description="refuse a show while the X server reports another window "
+                                    "covering the modulator's window (desktops without a compositing manager only: "
+                                    "a compositor's overlay always counts as covering)")
         presented_log: str | None = Field(None, description="append one JSON line per presented image to this file")
 
         @model_validator(mode="after")
@@ -419,6 +422,15 @@ class DisplayModulator(Modulator):
         if s.presented_log:
             with open(self._path(s.presented_log), "a", encoding="utf-8") as f:
                 f.write(json.dumps(record) + "\n")
+        if reply.get("mode") == "skip":
+            self.shown = None
+            raise DeviceFault(f"the X server skipped the image of mask {index} (another image replaced it before "
+                              "it reached the screen)", device="modulator")
+        if s.covered_check and reply.get("covered"):
+            self.shown = None
+            raise DeviceFault(f"another window covers part of the modulator's screen (mask {index})", device="modulator",
+                              hint="close the window, notification or screen saver on the modulator's screen; "
+                              "keep the desktop off that screen")
         if s.readback_check and not (reply.get("match") and reply.get("grey")):
             self.shown = None
             raise DeviceFault(f"the screen read back after showing mask {index} is not its image "

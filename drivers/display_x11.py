@@ -16,6 +16,7 @@ Requests (one JSON object per line) and replies:
   X server reports it presented (Present extension ``CompleteNotify``: the refresh it reached the
   screen, ``msc``/``ust``; without Present, after a round trip that follows the copy) ->
   ``{"ok": true, "index": k, "serial": n, "msc": ..., "ust": ..., "mode": "copy"|"flip"|"skip"|"sync",
+  "covered": bool (another window still covers part of the screen, as the X server reports it),
   "sha256": "...", "match": bool, "grey": bool}`` (when ``readback``: the screen read back with
   GetImage, the SHA-256 of its grey levels, whether they equal image k, whether every pixel is grey)
 - ``{"op": "quit"}``.
@@ -139,6 +140,7 @@ class Presenter:
         self.entry = None
         self.serial = 0
         self.shown = None
+        self.visibility = X.VisibilityUnobscured
 
     # ------------------------------------------------------------------ window
     def open(self, index: int) -> dict:
@@ -167,7 +169,7 @@ class Presenter:
         self.window = scr.root.create_window(
             entry["x"], entry["y"], w, h, 0, scr.root_depth, X.InputOutput, X.CopyFromParent,
             override_redirect=True, background_pixel=0, cursor=cursor,
-            event_mask=X.StructureNotifyMask | X.ExposureMask)
+            event_mask=X.StructureNotifyMask | X.ExposureMask | X.VisibilityChangeMask)
         self.window.set_wm_name("maskrun modulator")
         self.gc = self.window.create_gc(graphics_exposures=False)
         self.window.map()
@@ -199,6 +201,8 @@ class Presenter:
             raise Lost("the modulator window was closed (destroyed by another X client)")
         if ev.type == X.UnmapNotify and ev.window.id == self.window.id:
             raise Lost("the modulator window was taken off the screen (unmapped or closed by another X client)")
+        if ev.type == X.VisibilityNotify and ev.window.id == self.window.id:
+            self.visibility = ev.state  # unobscured, partially or fully obscured by another window
         if ev.type == X.Expose and ev.window.id == self.window.id and self.shown is not None:
             self.window.copy_area(self.gc, self.pixmaps[self.shown], ev.x, ev.y, ev.width, ev.height, ev.x, ev.y)
         name = getattr(ev, "__class__", type(ev)).__name__
@@ -246,6 +250,9 @@ class Presenter:
         self.serial += 1
         # the server repaints exposures from the shown image by itself
         self.window.change_attributes(background_pixmap=pix)
+        self.window.configure(stack_mode=X.Above)  # above any window that appeared on the modulator's screen
+        # the screen saver (and display power management) count this as activity: no blanking mid-run
+        self.disp.force_screen_saver(X.ScreenSaverReset)
         reply = {"ok": True, "index": index, "serial": self.serial}
         if self.present_opcode is not None:
             _PresentPixmap(display=self.disp.display, opcode=self.present_opcode, window=self.window.id,
@@ -268,6 +275,9 @@ class Presenter:
             self.disp.sync()  # the round trip returns after the server has done the copy
             reply["mode"] = "sync"
         self.shown = index
+        self.disp.sync()
+        self.drain()  # visibility changes from the restack
+        reply["covered"] = self.visibility != X.VisibilityUnobscured
         if readback:
             img = self.root.get_image(self.entry["x"], self.entry["y"], w, h, X.ZPixmap, 0xFFFFFFFF)
             shot = np.frombuffer(img.data, dtype=self.byte_order + "u4").reshape(h, w) & np.uint32(0xFFFFFF)

@@ -292,3 +292,62 @@ def test_the_mapping_matches_the_tests_own_placement(sr, sc, dr, dc, a, outside,
     for k in range(2):
         want = expected_phase_image(masks[k], prof, screen, (sr, sc), (dr, dc), a, outside)
         assert np.array_equal(got[k], want)
+
+
+def test_a_window_over_the_modulator_is_pushed_under_or_refused(xserver, tmp_path):
+    from Xlib import X, display as xdisplay
+    from Xlib.ext import screensaver  # noqa: F401  (MIT-SCREEN-SAVER requests)
+
+    from maskrun.drivers import DeviceFault
+
+    masks = random_phase_masks(2, (16, 16), seed=1)
+    mod = _driver(xserver, tmp_path, screen=1, readback_check=True)
+    mod.open()
+    d = xdisplay.Display(xserver)
+    try:
+        mod.load(masks)
+        mod.show(0)
+        # a pop-up (override-redirect, like a notification) appears over the modulator's image
+        root = d.screen(1).root
+        popup = root.create_window(300, 250, 200, 100, 0, d.screen(1).root_depth, X.InputOutput, X.CopyFromParent,
+                                   override_redirect=True, background_pixel=0xFF0000)
+        popup.map()
+        d.sync()
+        time.sleep(0.2)
+        # the next show raises the modulator's window above it again and the screen is exact
+        mod.show(1)
+        assert np.array_equal(_grey_shot(xserver), mod.images[1])
+        # the show counted as activity: the X server's idle time (screen saver, power saving) was reset
+        idle_ms = root.screensaver_query_info().idle
+        assert idle_ms < 1000
+    finally:
+        mod.close()
+    # a window the modulator cannot get above (a compositing manager's overlay window, always on top)
+    # is refused with covered_check
+    from Xlib.ext import composite  # noqa: F401
+
+    mod = _driver(xserver, tmp_path, screen=1, covered_check=True)
+    mod.open()
+    try:
+        mod.load(masks)
+        mod.show(0)
+        d2 = xdisplay.Display(xserver)
+        overlay = d2.screen(1).root.composite_get_overlay_window().overlay_window
+        d2.sync()
+        with pytest.raises(DeviceFault, match="another window covers part of the modulator's screen"):
+            t_end = time.monotonic() + 5.0
+            while time.monotonic() < t_end:  # the visibility change reaches the display process asynchronously
+                mod.show(1)
+        d2.close()  # the overlay goes with its client: no longer covered, shows go through again
+        t_end = time.monotonic() + 5.0
+        while True:
+            try:
+                mod.show(1)
+                break
+            except DeviceFault:
+                assert time.monotonic() < t_end, "still reported covered after the overlay was released"
+                time.sleep(0.05)
+        assert overlay is not None
+    finally:
+        mod.close()
+        d.close()
