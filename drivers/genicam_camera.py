@@ -184,9 +184,9 @@ class GenicamCamera(Camera):
             layout = layout_for(name, luminance=s.luminance)
         except UnsupportedPixelFormat as exc:
             readable = [m for m in offered if m in MONO_FORMATS]
+            mono_hint = f"set pixel_format to one of {', '.join(readable)}, or " if readable else ""
             raise DeviceMisconfigured(f"{exc}; the camera offers {', '.join(offered)}", device="camera",
-                                      hint=f"set pixel_format to one of {', '.join(readable)}" if readable else
-                                      "set luminance = true to accept colour, or use a mono camera") from None
+                                      hint=f"{mono_hint}set luminance = true to accept colour as luminance") from None
         f.set_enum("PixelFormat", name, "the pixel format")
         return layout
 
@@ -298,6 +298,8 @@ class GenicamCamera(Camera):
             ia = self._require_open()
             while True:
                 buf = self._fetch(ia, deadline - time.monotonic())
+                if buf is None and time.monotonic() < deadline - 1e-3:
+                    continue  # an incomplete buffer (dropped by the consumer) came back early: keep waiting
                 if buf is None:
                     raise DeviceTimeout(f"no frame within {timeout_s:g} s ({self._trigger} trigger)", device="camera")
                 host_t = time.time()

@@ -14,17 +14,18 @@ wheel (``viky.cti``, three simulated cameras): for trying a config without a cam
 
 from __future__ import annotations
 
+import logging
 import os
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
 from .errors import DeviceDisconnected, DeviceMisconfigured
 
-__all__ = ["CameraInfo", "TEST_PRODUCER", "choose_camera", "find_producers", "import_harvesters",
-           "list_cameras", "test_producer_path"]
+__all__ = ["CameraInfo", "SIMULATED_PRODUCER", "choose_camera", "find_producers", "import_harvesters",
+           "list_cameras", "simulated_producer_path"]
 
 ENV_VAR = "GENICAM_GENTL64_PATH"
-TEST_PRODUCER = "sim:viky"
+SIMULATED_PRODUCER = "sim:viky"
 EXTRA_HINT = "install the optional extra: pip install 'maskrun[genicam]' (it brings harvesters and genicam)"
 
 
@@ -35,10 +36,14 @@ def import_harvesters():
     except ImportError as exc:
         raise DeviceMisconfigured(f"the genicam camera needs the GenTL consumer library, which is not installed "
                                   f"({exc})", device="camera", hint=EXTRA_HINT) from None
+    # the consumer logs every GenTL error it re-raises with a traceback; the driver turns each into one
+    # typed error with its message, so only the consumer's critical messages are left on the console
+    for name in [n for n in logging.root.manager.loggerDict if n == "harvesters" or n.startswith("harvesters.")]:
+        logging.getLogger(name).setLevel(logging.CRITICAL)
     return Harvester
 
 
-def test_producer_path() -> Path | None:
+def simulated_producer_path() -> Path | None:
     """The simulated producer inside the installed ``genicam`` wheel, or None."""
     try:
         import genicam  # noqa: PLC0415
@@ -65,11 +70,11 @@ def find_producers(producer: str | list[str] | None, environ=None) -> list[Path]
         places, origin = _split_env(environ.get(ENV_VAR, "")), f"${ENV_VAR}"
     found: list[Path] = []
     for place in places:
-        if place == TEST_PRODUCER:
-            path = test_producer_path()
+        if place == SIMULATED_PRODUCER:
+            path = simulated_producer_path()
             looked.append(f"{place} (the genicam wheel)")
             if path is None:
-                raise DeviceMisconfigured(f"{TEST_PRODUCER} names the simulated producer of the genicam wheel, "
+                raise DeviceMisconfigured(f"{SIMULATED_PRODUCER} names the simulated producer of the genicam wheel, "
                                           "which is not installed", device="camera", hint=EXTRA_HINT)
             found.append(path)
             continue
@@ -88,7 +93,7 @@ def find_producers(producer: str | list[str] | None, environ=None) -> list[Path]
             f"no GenTL producer (.cti) found; looked in {origin}: {where}", device="camera",
             hint=f"install your camera maker's GenTL producer (its SDK or driver package) and set {ENV_VAR} "
             f"to its folder or give producer = \"/path/to/producer.cti\"; to try without a camera: "
-            f"producer = \"{TEST_PRODUCER}\"")
+            f"producer = \"{SIMULATED_PRODUCER}\"")
     unique: list[Path] = []
     for p in found:
         if p.resolve() not in [u.resolve() for u in unique]:

@@ -110,6 +110,8 @@ class PixelLayout:
             return width
         if packing == "word":
             return 2 * width
+        if packing == "gige":
+            return 3 * (-(-width // 2))
         return -(-width * bits // 8)
 
     def _unpack_stream(self, raw: np.ndarray, count: int) -> np.ndarray:
@@ -155,7 +157,7 @@ class PixelLayout:
             return np.ascontiguousarray(flat.reshape(height, groups * group_px)[:, :width]).astype(self.dtype)
         count = width * height
         bits, packing = MONO_FORMATS[self.name]
-        need = -(-count * bits // 8) if packing in ("lsb", "gige") else (count if packing == "byte" else 2 * count)
+        need = {"lsb": -(-count * bits // 8), "gige": 3 * (-(-count // 2)), "byte": count}.get(packing, 2 * count)
         if raw.size < need:
             raise ValueError(f"{self.name} buffer of {raw.size} bytes is short of {width} x {height} pixels ({need} bytes)")
         out = self._unpack_stream(raw, count).reshape(height, width)
