@@ -15,7 +15,9 @@ returned began exposing after the mask was in place (slower; refused with 0 skip
 Frame ids and time stamps are the camera's (``BUFFER_INFO_FRAMEID``, ``TIMESTAMP_NS`` put on
 the host clock at each acquisition start) when the producer gives them, else counted and
 stamped on the host; ``metadata['frame_id_source']`` / ``['timestamp_source']`` say which.
-Ids keep advancing across acquisition restarts (ROI change, reopen).
+Ids keep advancing across acquisition restarts (ROI change, reopen). Free-running, the ids count
+the frames kept (the skipped frames would otherwise read as drops); the camera's own id is in
+``metadata['camera_frame_id']``.
 """
 
 from __future__ import annotations
@@ -336,6 +338,10 @@ class GenicamCamera(Camera):
         cam_id = _get(buf, "frame_id")
         if cam_id is None:
             frame_id, id_source = self._last_id + 1, "host counter (the producer gives no frame id)"
+        elif self._trigger == "free-running":
+            # the frames skipped after each trigger are gaps in the camera's counter by design, not drops:
+            # count the frames kept (the camera's id stays in camera_frame_id)
+            frame_id, id_source = self._last_id + 1, "host counter of kept frames (free-running: skipped frames not counted)"
         else:
             if self._id_base is None:
                 self._id_base = self._last_id + 1 - int(cam_id)

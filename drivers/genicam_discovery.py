@@ -79,7 +79,7 @@ def find_producers(producer: str | list[str] | None, environ=None) -> list[Path]
             found.append(path)
             continue
         path = Path(place).expanduser()
-        looked.append(str(path))
+        looked.append(str(path) if path.exists() else f"{path} (does not exist)")
         if path.is_dir():
             found.extend(sorted(p for p in path.iterdir() if p.suffix.lower() == ".cti" and p.is_file()))
         elif path.is_file():
@@ -88,9 +88,12 @@ def find_producers(producer: str | list[str] | None, environ=None) -> list[Path]
                                           hint="give the maker's .cti file or the folder holding it")
             found.append(path)
     if not found:
-        where = ", ".join(looked) if looked else f"nowhere (no producer setting and ${ENV_VAR} is not set)"
+        if looked:
+            where = f"none in {', '.join(looked)} (from {origin})"
+        else:
+            where = f"no producer setting, and ${ENV_VAR} is not set"
         raise DeviceDisconnected(
-            f"no GenTL producer (.cti) found; looked in {origin}: {where}", device="camera",
+            f"no GenTL producer (.cti) found: {where}", device="camera",
             hint=f"install your camera maker's GenTL producer (its SDK or driver package) and set {ENV_VAR} "
             f"to its folder or give producer = \"/path/to/producer.cti\"; to try without a camera: "
             f"producer = \"{SIMULATED_PRODUCER}\"")
