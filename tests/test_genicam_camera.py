@@ -215,3 +215,23 @@ def test_the_conformance_kit_on_a_real_camera():
         pytest.skip("no GenTL producer named: set MASKRUN_GENICAM_PRODUCER or GENICAM_GENTL64_PATH")
     results = assert_conformant("genicam", settings, failing_settings={"device": "no-such-camera"})
     assert all(r.status in ("pass", "skip") for r in results)
+
+
+def test_the_cameras_verb_lists_vendor_model_serial_name_and_the_config_line(capsys, monkeypatch):
+    from maskrun.daemon.cli import main
+
+    monkeypatch.setenv("COLUMNS", "160")
+    assert main(["cameras", "--producer", "sim:viky"]) == 0
+    out = capsys.readouterr().out
+    assert "viky.cti" in out and "Machine Vision Games Ltd." in out and "Viky" in out
+    for serial, device_id in (("0", "VikyTL_DEV_red"), ("1", "VikyTL_DEV_green"), ("2", "VikyTL_DEV_blue")):
+        assert device_id in out and f'device = "{serial}"' in out
+    assert 'producer = "sim:viky"' in out and "3 camera(s) seen by 1 producer(s)" in out
+    assert main(["cameras", "--producer", "sim:viky", "--json"]) == 0
+    listed = json.loads(capsys.readouterr().out)
+    assert [c["serial"] for c in listed["cameras"]] == ["0", "1", "2"] and listed["producer_errors"] == []
+    assert set(listed["cameras"][0]) >= {"vendor", "model", "serial", "user_name", "id", "producer", "config_line"}
+    monkeypatch.delenv("GENICAM_GENTL64_PATH", raising=False)
+    assert main(["cameras"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "no GenTL producer (.cti) found" in err
