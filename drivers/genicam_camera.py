@@ -32,7 +32,14 @@ from pydantic import Field, field_validator
 
 from .base import Camera, DriverSettings, Frame, TriggerMode, checked_roi
 from .errors import DeviceDisconnected, DeviceMisconfigured, DeviceTimeout
-from .genicam_discovery import CameraInfo, camera_infos, choose_camera, find_producers, import_harvesters
+from .genicam_discovery import (
+    CameraInfo,
+    camera_infos,
+    check_producer_loads,
+    choose_camera,
+    find_producers,
+    import_harvesters,
+)
 from .genicam_features import Features, IntRange
 from .genicam_pixels import MONO_FORMATS, MONO_PREFERENCE, UnsupportedPixelFormat, layout_for
 from .genicam_roi import AxisLimits, RoiRefused, plan_roi
@@ -124,6 +131,8 @@ class GenicamCamera(Camera):
 
         producers = find_producers(self.settings.producer)
         Harvester = import_harvesters()
+        for cti in producers:
+            check_producer_loads(cti)
         h = Harvester()
         self._harvester = h
         for cti in producers:

@@ -14,6 +14,7 @@ wheel (``viky.cti``, three simulated cameras): for trying a config without a cam
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import os
 from dataclasses import asdict, dataclass
@@ -22,7 +23,7 @@ from pathlib import Path
 from .errors import DeviceDisconnected, DeviceMisconfigured
 
 __all__ = ["CameraInfo", "SIMULATED_PRODUCER", "choose_camera", "find_producers", "import_harvesters",
-           "list_cameras", "simulated_producer_path"]
+           "list_cameras", "simulated_producer_path", "check_producer_loads"]
 
 ENV_VAR = "GENICAM_GENTL64_PATH"
 SIMULATED_PRODUCER = "sim:viky"
@@ -149,11 +150,30 @@ def _access_text(code: str) -> str:
             "5": "open (read/write)", "6": "open (read-only)"}.get(code, code)
 
 
+def check_producer_loads(cti: Path) -> None:
+    """DeviceMisconfigured when the GenTL producer cannot be loaded (the consumer would only skip it)."""
+    from genicam.gentl import GenTLProducer, LoadLibraryException  # noqa: PLC0415
+
+    producer = GenTLProducer.create_producer()
+    try:
+        producer.open(str(cti))
+    except LoadLibraryException as exc:  # (already loaded in this process: "in use", which is fine)
+        text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise DeviceMisconfigured(f"the GenTL producer {cti} cannot be loaded: {text}", device="camera",
+                                  hint="reinstall the camera maker's producer (a 64-bit .cti for this system), "
+                                  "or name another one") from None
+    except Exception:  # noqa: BLE001 - loaded, or a fault the consumer reports when it opens the producer
+        return
+    with contextlib.suppress(Exception):
+        producer.close()
+
+
 def list_cameras(producers: list[Path]) -> list[CameraInfo]:
     """Every camera each producer sees, loading one producer at a time (its path in ``producer``)."""
     Harvester = import_harvesters()
     out: list[CameraInfo] = []
     for cti in producers:
+        check_producer_loads(cti)
         h = Harvester()
         try:
             h.add_file(str(cti))
@@ -175,7 +195,8 @@ def choose_camera(cameras: list[CameraInfo], device: str | None) -> int:
         raise DeviceDisconnected(
             "the GenTL producer sees no camera", device="camera",
             hint="check the camera's power and cable (and for GigE Vision that it is on the same subnet as this "
-            "computer); 'maskrun cameras' lists what each producer sees")
+            "computer), and that no other program has it open (producers may leave an open camera out); "
+            "'maskrun cameras' lists what each producer sees")
     if device is None:
         if len(cameras) == 1:
             return 0

@@ -79,6 +79,17 @@ def test_no_producer_is_one_line_saying_where_it_looked_and_what_to_install(tmp_
     (tmp_path / "notes.txt").write_text("x")
     with pytest.raises(DeviceMisconfigured, match="is not a GenTL producer"):
         camera(producer=str(tmp_path / "notes.txt")).open()
+    (tmp_path / "broken.cti").write_text("not a shared library")  # the consumer alone would skip it silently
+    with pytest.raises(DeviceMisconfigured, match="broken.cti cannot be loaded: .*Failed to load CTI file"):
+        camera(producer=str(tmp_path / "broken.cti")).open()
+
+
+def test_a_camera_open_elsewhere_is_not_taken_twice():
+    with camera() as first:
+        with pytest.raises(DeviceDisconnected, match="no other program has it open"):
+            camera().open()
+        first.trigger()
+        first.grab(2.0)  # the first user of the camera is not disturbed
 
 
 def test_frames_carry_advancing_ids_and_say_where_ids_and_stamps_come_from():
