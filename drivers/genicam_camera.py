@@ -41,6 +41,7 @@ from .genicam_discovery import (
     import_harvesters,
 )
 from .genicam_features import Features, IntRange
+from .genicam_frames import FrameCounter, buffer_pixels, buffer_value
 from .genicam_pixels import MONO_FORMATS, MONO_PREFERENCE, UnsupportedPixelFormat, layout_for
 from .genicam_roi import AxisLimits, RoiRefused, plan_roi
 
@@ -103,9 +104,7 @@ class GenicamCamera(Camera):
         self._exposure_s = 0.01
         self._trigger = settings.trigger
         self._skip = 0
-        self._id_base: int | None = None
-        self._last_id = 0
-        self._ts_ref: tuple[int, float] | None = None
+        self._counter = FrameCounter()
         self._status: dict = {}
         self._status_t = -math.inf
         if settings.trigger == "free-running" and settings.free_running_skip_frames < 1:
@@ -230,8 +229,7 @@ class GenicamCamera(Camera):
             self._acquirer.start()
         except Exception as exc:  # noqa: BLE001 - GenTL errors at start: the link or the settings
             raise _as_device_error(exc, "starting acquisition") from None
-        self._id_base = None  # the camera may restart its counter: rebase on the next frame
-        self._ts_ref = None
+        self._counter.restart()  # the camera may restart its counter and clock: rebase on the next frame
 
     def _stop(self) -> None:
         if self._acquirer is not None and self._acquirer.is_acquiring():
@@ -325,54 +323,18 @@ class GenicamCamera(Camera):
                         buf.parent.queue_buffer(buf)
 
     def _frame(self, buf, host_t: float) -> Frame:
-        layout = self._layout
-        code = _get(buf, "pixel_format")
-        if code is not None:
-            name = self._features.enum_symbol_of("PixelFormat", code)
-            if name and name != layout.name:
-                raise DeviceMisconfigured(f"the camera delivered {name} instead of {layout.name}", device="camera",
-                                          hint="another program may have changed the camera's settings; reopen it")
-        width = _get(buf, "width") or self._plan.camera[3]
-        height = _get(buf, "height") or self._plan.camera[2]
-        start = _get(buf, "image_offset") or 0
-        raw = memoryview(buf.raw_buffer)[start:]
-        try:
-            image = layout.to_frame(raw, width, height, _get(buf, "padding_x") or 0)
-        except ValueError as exc:
-            from .errors import DeviceFault
-
-            raise DeviceFault(f"corrupt frame: {exc}", device="camera") from None
-        r0, c0, rows, cols = self._plan.crop
-        pixels = image if self._plan.exact else image[r0 : r0 + rows, c0 : c0 + cols].copy()
-        cam_id = _get(buf, "frame_id")
-        if cam_id is None:
-            frame_id, id_source = self._last_id + 1, "host counter (the producer gives no frame id)"
-        elif self._trigger == "free-running":
-            # the frames skipped after each trigger are gaps in the camera's counter by design, not drops:
-            # count the frames kept (the camera's id stays in camera_frame_id)
-            frame_id, id_source = self._last_id + 1, "host counter of kept frames (free-running: skipped frames not counted)"
-        else:
-            if self._id_base is None:
-                self._id_base = self._last_id + 1 - int(cam_id)
-            frame_id, id_source = int(cam_id) + self._id_base, "camera"
-        if frame_id <= self._last_id:  # the camera restarted its counter without an acquisition restart
-            self._id_base = self._last_id + 1 - int(cam_id)
-            frame_id = self._last_id + 1
-        self._last_id = frame_id
-        ts_ns = _get(buf, "timestamp_ns")
-        if ts_ns is None:
-            stamp, ts_source = host_t, "host clock at delivery (the producer gives no time stamp)"
-        else:
-            if self._ts_ref is None:
-                self._ts_ref = (int(ts_ns), host_t)
-            stamp = self._ts_ref[1] + (int(ts_ns) - self._ts_ref[0]) * 1e-9
-            ts_source = "camera clock, put on the host clock at acquisition start"
+        layout, plan = self._layout, self._plan
+        pixels = buffer_pixels(buf, layout, self._features, plan.camera, plan.crop)
+        cam_id = buffer_value(buf, "frame_id")
+        frame_id, id_source = self._counter.frame_id(cam_id, count_kept=self._trigger == "free-running")
+        ts_ns = buffer_value(buf, "timestamp_ns")
+        stamp, ts_source = self._counter.timestamp_s(ts_ns, host_t)
         meta = {
             "camera": f"{self._info.vendor} {self._info.model}", "serial": self._info.serial, "device_id": self._info.id,
             "producer": self._producer, "pixel_format": layout.name, "bit_depth": layout.bit_depth,
             "frame_id_source": id_source, "camera_frame_id": None if cam_id is None else int(cam_id),
-            "timestamp_source": ts_source, "trigger": self._trigger, "roi_read_by_camera": list(self._plan.camera),
-            "host_crop": not self._plan.exact, "binning": self.settings.binning,
+            "timestamp_source": ts_source, "trigger": self._trigger, "roi_read_by_camera": list(plan.camera),
+            "host_crop": not plan.exact, "binning": self.settings.binning,
             "exposure_source": "ExposureTime" if self.settings.exposure_control == "camera" else
             "recorded only (exposure_control = none: the camera keeps its own exposure)",
         }
@@ -494,14 +456,6 @@ class GenicamCamera(Camera):
                 raise DeviceDisconnected("the GenICam camera is not open", device="camera")
             f.set_if_present("GainAuto", "Off")
             f.set_float("Gain", float(value), "gain")
-
-
-def _get(buf, name: str):
-    try:
-        value = getattr(buf, name)
-    except Exception:  # noqa: BLE001 - producers raise NotAvailable for what they do not deliver
-        return None
-    return value
 
 
 def _line(exc: Exception) -> str:

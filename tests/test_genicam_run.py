@@ -90,7 +90,7 @@ def test_the_camera_lost_mid_run_is_reconnected_and_no_frame_is_lost(tmp_path):
         deadline = time.monotonic() + 60
         while time.monotonic() < deadline and not done.is_set():
             cams = [o for o in gc.get_objects() if isinstance(o, GenicamCamera) and o._acquirer is not None]
-            if cams and cams[0]._last_id >= 3:
+            if cams and cams[0]._counter.last_id >= 3:
                 with cams[0]._lock:  # between two grabs, as a cable pulled between frames
                     cams[0]._acquirer.device.module.close()
                 return
