@@ -12,11 +12,12 @@ checks ranges and increments before writing, and names the feature in every erro
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass
 from typing import Any
 
-from .errors import DeviceMisconfigured
+from .errors import DeviceDisconnected, DeviceError, DeviceMisconfigured
 
 __all__ = ["Features", "IntRange", "nearest_step"]
 
@@ -61,6 +62,22 @@ def nearest_step(value: int, rng: IntRange, *, upward: bool | None = None) -> in
     return rng.min + rng.inc * min(max(k, 0), span)
 
 
+def _guarded(method):
+    """Turn any exception but a DeviceError raised inside ``method`` into the device error it means."""
+
+    @functools.wraps(method)
+    def wrapper(self, *args, **kwargs):
+        try:
+            return method(self, *args, **kwargs)
+        except DeviceError:
+            raise
+        except Exception as exc:  # noqa: BLE001 - GenApi, GenTL and the port raise their own types
+            subject = f" {args[0]}" if args and isinstance(args[0], str) else ""
+            raise self._refusal(exc, f"{method.__name__.strip('_').replace('_', ' ')}{subject}") from None
+
+    return wrapper
+
+
 class Features:
     """Typed access to one camera's GenApi node map, errors naming the SFNC feature."""
 
@@ -76,6 +93,7 @@ class Features:
             return None
         return node
 
+    @_guarded
     def has(self, name: str) -> bool:
         """True when the camera implements ``name`` and it can be used now."""
         from genicam import genapi
@@ -83,6 +101,7 @@ class Features:
         node = self._raw(name)
         return node is not None and genapi.is_implemented(node) and genapi.is_available(node)
 
+    @_guarded
     def writable(self, name: str) -> bool:
         from genicam import genapi
 
@@ -97,22 +116,37 @@ class Features:
                                         f"that has {name} (the maker's documentation lists its features)"))
         return self._raw(name)
 
+    def _refusal(self, exc: Exception, what: str) -> DeviceError:
+        """A failed feature access as a device error: a transport error (the port's own exception, a
+        GenTL error, an OS error) means the camera is gone; GenApi's own exceptions mean it refused."""
+        from genicam import genapi
+
+        if isinstance(exc, genapi.GenericException) and not isinstance(exc, genapi.TimeoutException):
+            return DeviceMisconfigured(f"the camera refused {what}: {_first_line(exc)}", device=self.device)
+        return DeviceDisconnected(f"the camera did not answer while {what} ({_first_line(exc)})", device=self.device)
+
     def _write(self, node, name: str, value) -> None:
         try:
             node.value = value
         except Exception as exc:  # noqa: BLE001 - GenApi's own message names the limit it hit
-            raise DeviceMisconfigured(f"the camera refused {name} = {value!r}: {_first_line(exc)}",
-                                      device=self.device) from None
+            raise self._refusal(exc, f"{name} = {value!r}") from None
 
     # ------------------------------------------------------------------ typed access
+    @_guarded
     def get(self, name: str, needed_for: str = "reading it") -> Any:
-        return self.node(name, needed_for).value
+        node = self.node(name, needed_for)
+        try:
+            return node.value
+        except Exception as exc:  # noqa: BLE001
+            raise self._refusal(exc, f"reading {name}") from None
 
+    @_guarded
     def int_range(self, name: str, needed_for: str) -> IntRange:
         node = self.node(name, needed_for)
         inc = int(node.inc) if hasattr(node, "inc") else 1
         return IntRange(name, int(node.min), int(node.max), max(1, inc))
 
+    @_guarded
     def set_int(self, name: str, value: int, needed_for: str) -> int:
         rng = self.int_range(name, needed_for)
         value = int(value)
@@ -124,10 +158,12 @@ class Features:
         self._write(node, name, value)
         return int(node.value)
 
+    @_guarded
     def float_limits(self, name: str, needed_for: str) -> tuple[float, float]:
         node = self.node(name, needed_for)
         return float(node.min), float(node.max)
 
+    @_guarded
     def set_float(self, name: str, value: float, needed_for: str, *, scale: float = 1.0, unit: str = "") -> float:
         """Write ``value`` (in the driver's unit; camera value = value / scale); read back in the driver's unit."""
         node = self.node(name, needed_for)
@@ -144,6 +180,7 @@ class Features:
         self._write(node, name, min(max(raw, lo), hi))
         return float(node.value) * scale
 
+    @_guarded
     def set_enum(self, name: str, symbol: str, needed_for: str) -> None:
         node = self.node(name, needed_for)
         options = self.enum_options(name)
@@ -154,6 +191,7 @@ class Features:
         if node.value != symbol:
             self._write(node, name, symbol)
 
+    @_guarded
     def enum_options(self, name: str) -> list[str]:
         """Symbols of the enumeration entries the camera offers now."""
         from genicam import genapi
@@ -177,14 +215,15 @@ class Features:
                 return entry.symbolic
         return None
 
+    @_guarded
     def execute(self, name: str, needed_for: str) -> None:
         node = self.node(name, needed_for)
         try:
             node.execute()
         except Exception as exc:  # noqa: BLE001
-            raise DeviceMisconfigured(f"the camera refused the command {name}: {_first_line(exc)}",
-                                      device=self.device) from None
+            raise self._refusal(exc, f"the command {name}") from None
 
+    @_guarded
     def set_if_present(self, name: str, symbol: str) -> bool:
         """Set an enumeration when the camera has it and offers ``symbol`` (auto modes off); True if set."""
         if self.writable(name) and symbol in self.enum_options(name):
@@ -197,9 +236,11 @@ class Features:
         node = self.node("ExposureTime", "the exposure")
         return _TIME_UNITS.get(_unit(node), 1e-6)  # SFNC: microseconds when the camera gives no unit
 
+    @_guarded
     def exposure_s(self) -> float:
         return float(self.get("ExposureTime", "the exposure")) * self._exposure_scale()
 
+    @_guarded
     def set_exposure_s(self, exposure_s: float) -> float:
         """Write the exposure (seconds) as ExposureTime (camera's unit, us per SFNC); return what it uses."""
         self.set_if_present("ExposureAuto", "Off")
@@ -207,6 +248,7 @@ class Features:
         return self.set_float("ExposureTime", exposure_s, "the exposure", scale=self._exposure_scale(), unit=" s")
 
     # ------------------------------------------------------------------ trigger
+    @_guarded
     def set_trigger(self, source: str, activation: str | None = None) -> None:
         """Frame start on ``source`` ('Software' or a line such as 'Line0')."""
         what = "the software trigger" if source == "Software" else f"the hardware trigger on {source}"
@@ -220,10 +262,12 @@ class Features:
         if source == "Software":
             self.node("TriggerSoftware", what)
 
+    @_guarded
     def trigger_off(self) -> None:
         if self.writable("TriggerMode") and "Off" in self.enum_options("TriggerMode"):
             self.set_enum("TriggerMode", "Off", "free running")
 
+    @_guarded
     def software_trigger(self) -> None:
         self.execute("TriggerSoftware", "the software trigger")
 

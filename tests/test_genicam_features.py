@@ -18,7 +18,7 @@ from hypothesis import strategies as st
 
 genapi = pytest.importorskip("genicam.genapi", reason="the genicam extra is not installed")
 
-from maskrun.drivers.errors import DeviceMisconfigured  # noqa: E402
+from maskrun.drivers.errors import DeviceDisconnected, DeviceMisconfigured  # noqa: E402
 from maskrun.drivers.genicam_features import Features  # noqa: E402
 from maskrun.drivers.genicam_roi import AxisLimits, RoiRefused, plan_roi  # noqa: E402
 
@@ -179,3 +179,37 @@ def test_every_roi_that_fits_is_taken_exactly_or_covered_or_refused_with_a_valid
         assert nr0 + nh <= 1024 and nc0 + nw <= 1280
     else:
         assert exact.camera == (r0, c0, h, w)
+
+
+class UnpluggedCamera(RegisterCamera):
+    """The same registers behind a link that can be cut: every access then fails as a transport error."""
+
+    cut = False
+
+    def read(self, address, length):
+        if self.cut:
+            raise OSError("link lost")
+        return super().read(address, length)
+
+    def write(self, address, value):
+        if self.cut:
+            raise OSError("link lost")
+        super().write(address, value)
+
+
+def test_a_camera_gone_mid_run_is_a_disconnect_not_a_refusal():
+    node_map = genapi.NodeMap()
+    node_map.load_xml_from_string(XML)
+    port = UnpluggedCamera()
+    node_map.connect(port, "Device")
+    features = Features(node_map)
+    features.set_trigger("Software")
+    features.software_trigger()
+    port.cut = True
+    with pytest.raises(DeviceDisconnected, match="did not answer while the command TriggerSoftware"):
+        features.software_trigger()
+    with pytest.raises(DeviceDisconnected, match="did not answer"):
+        features.set_exposure_s(0.01)
+    port.cut = False  # plugged back: the same node map works again
+    features.software_trigger()
+    assert port.triggers == 2
