@@ -398,8 +398,8 @@ class GenicamCamera(Camera):
         try:
             plan = plan_roi(roi, self.settings.binning, rows_ax, cols_ax, host_crop=self.settings.host_crop)
         except RoiRefused as exc:
-            raise DeviceMisconfigured(str(exc), device="camera", hint=f"set the roi to {exc.nearest}, change the "
-                                      "[grid] shape, or set host_crop = true to crop on the host") from None
+            raise DeviceMisconfigured(str(exc), device="camera", hint="change the [grid] shape to a size the camera "
+                                      "takes, or set host_crop = true in [camera.settings] to crop on the host") from None
         f = self._features
         y, x, h, w = plan.camera
         f.set_int("Width", w, "the region of interest")
