@@ -158,10 +158,12 @@ class GenicamCamera(Camera):
         f, s = self._features, self.settings
         self._stop()
         self._layout = self._choose_format()
-        if f.has("BinningHorizontal") or s.binning != 1:
+        if f.writable("BinningHorizontal"):  # the sensor size is read unbinned
             f.set_int("BinningHorizontal", 1, "binning")
-            if f.has("BinningVertical"):
+            if f.writable("BinningVertical"):
                 f.set_int("BinningVertical", 1, "binning")
+        elif s.binning != 1:
+            f.node("BinningHorizontal", f"binning {s.binning}")  # names the missing feature
         self._sensor = self._read_sensor()
         if s.binning != 1:
             f.set_int("BinningHorizontal", s.binning, f"binning {s.binning}")

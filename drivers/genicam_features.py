@@ -21,8 +21,8 @@ from .errors import DeviceDisconnected, DeviceError, DeviceMisconfigured
 
 __all__ = ["Features", "IntRange", "nearest_step"]
 
-#: read-only values copied into frame metadata when the camera has them (SFNC names)
-STATUS_FEATURES = ("DeviceTemperature", "SensorTemperature", "DeviceTemperatureStatus")
+#: values copied into frame metadata when the camera has them (SFNC names): its status and what it uses
+STATUS_FEATURES = ("DeviceTemperature", "SensorTemperature", "DeviceTemperatureStatus", "Gain", "BlackLevel")
 #: unit text of a float feature -> seconds per unit (SFNC gives ExposureTime in us)
 _TIME_UNITS = {"us": 1e-6, "µs": 1e-6, "\u00b5s": 1e-6, "ms": 1e-3, "s": 1.0, "ns": 1e-9}
 

@@ -208,11 +208,12 @@ def test_a_camera_lost_mid_run_raises_the_disconnect_error_and_reopens():
 def test_the_conformance_kit_passes_on_the_test_producer():
     results = assert_conformant("genicam", VIKY, failing_settings={"device": "absent"}, grab_timeout_s=3.0)
     skipped = {r.name: r.detail for r in results if r.status == "skip"}
-    # skipped: only what the simulated camera truly lacks: trigger lines, and an exposure the driver could
-    # lengthen to force a timeout (it has no ExposureTime; the timeout itself is tested above)
-    assert sorted(skipped) == ["hardware trigger", "timeout"]
-    assert "no TriggerMode feature" in skipped["hardware trigger"]
-    assert "does not wait for the exposure" in skipped["timeout"]
+    # skipped: only what the simulated camera truly lacks: trigger lines, and an exposure the kit could
+    # lengthen to force a timeout (no ExposureTime; the timeout itself is tested above). At 100 Hz the kept
+    # frame usually comes within the kit's 0.1 s, so that check is skipped; on a slow machine it may pass.
+    assert "no TriggerMode feature" in skipped.pop("hardware trigger")
+    assert set(skipped) <= {"timeout"}
+    assert all("does not wait for the exposure" in detail for detail in skipped.values())
 
 
 @pytest.mark.hardware

@@ -126,7 +126,7 @@ def test_a_feature_the_camera_lacks_is_named(camera):
 
 def test_read_only_status_values_go_to_the_metadata(camera):
     features, _ = camera
-    assert features.status_values() == {"DeviceTemperature": pytest.approx(41.5)}
+    assert features.status_values() == {"DeviceTemperature": pytest.approx(41.5), "BlackLevel": 0.0}
 
 
 def test_pixel_format_codes_map_to_their_names(camera):
