@@ -26,6 +26,7 @@ COMMAND_MODULES = [
     "maskrun.daemon.cmd_worker",
     "maskrun.daemon.cmd_drivers",
     "maskrun.daemon.cmd_screens",
+    "maskrun.daemon.cmd_cameras",
     "maskrun.daemon.cmd_view",
     "maskrun.daemon.cmd_report",
     "maskrun.daemon.cmd_resume",  # after cmd_service: shares the verb 'resume' (run file, or the daemon)

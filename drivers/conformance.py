@@ -400,6 +400,7 @@ def run_conformance(
 def print_results(results: list[CheckResult], console=None, title: str = "camera conformance") -> None:
     """Print the results as a table (rich): check, PASS/FAIL/SKIP, seconds, detail; then a count line."""
     from rich.console import Console
+    from rich.markup import escape
     from rich.table import Table
 
     console = console or Console()
@@ -410,7 +411,7 @@ def print_results(results: list[CheckResult], console=None, title: str = "camera
     table.add_column("detail", overflow="fold")
     style = {"pass": "[green]PASS[/]", "fail": "[bold red]FAIL[/]", "skip": "[yellow]SKIP[/]"}
     for r in results:
-        table.add_row(r.name, style[r.status], f"{r.elapsed_s:.2f}", r.detail)
+        table.add_row(r.name, style[r.status], f"{r.elapsed_s:.2f}", escape(r.detail))
     console.print(table)
     counts = {s: sum(r.status == s for r in results) for s in ("pass", "fail", "skip")}
     console.print(f"{counts['pass']} passed, {counts['fail']} failed, {counts['skip']} skipped")
