@@ -39,7 +39,9 @@ class LaserConfig(_Table):
     """The source. Shown in the safety notice before every run."""
 
     description: str = "laser"
-    laser_class: LaserClass = Field(description="IEC 60825-1 class of the source")
+    laser_class: LaserClass | None = Field(
+        None, description="IEC 60825-1 class of the source; checked against wavelength and power (never below "
+        "what they give); leave out for sources below 180 nm (X-ray, EUV): those get a radiation-protection notice")
     wavelength_m: float = Field(gt=1e-12, lt=1e-3)
     power_w: float = Field(gt=0)
     eyewear: str = Field(
@@ -47,6 +49,17 @@ class LaserConfig(_Table):
         description="what eyewear the site requires",
     )
     safety_officer: str = Field(default="the site's laser safety officer", description="who to contact")
+    radiation_protection_officer: str = Field(
+        default="the site's radiation protection officer", description="who to contact for ionising sources")
+
+    @model_validator(mode="after")
+    def _class_fits_the_beam(self):
+        from .laser_hazard import declaration_problem
+
+        problem = declaration_problem(self.laser_class, self.wavelength_m, self.power_w)
+        if problem:
+            raise ValueError(problem)
+        return self
 
 
 class GridConfig(_Table):
