@@ -148,25 +148,52 @@ def cmd_calibrate(args) -> int:
     return 0
 
 
+def _plan_bit_depth(cfg) -> int | None:
+    """ADC bits for the saturation capacity without a profile: [response] bit_depth, else the driver setting."""
+    if cfg.response.bit_depth is not None:
+        return int(cfg.response.bit_depth)
+    value = cfg.camera.settings.get("bit_depth")
+    return int(value) if isinstance(value, int) and not isinstance(value, bool) else None
+
+
 def cmd_plan(args) -> int:
     from .budget import PlanError, dark_frame_advice, plan_photons
-    from .camera_profile import CameraProfile
+    from .camera_profile import CameraProfile, ProfileError
     from .cli import CommandError
-    from .config import load_config
+    from .config import ConfigError, load_config
 
     console = Console(highlight=False)
     cfg = load_config(args.config)
     profile = None
     if cfg.response.profile:
-        profile = CameraProfile.load(cfg.config_dir / cfg.response.profile)
+        try:
+            profile = CameraProfile.load(cfg.config_dir / cfg.response.profile)
+        except ProfileError as exc:
+            raise CommandError(str(exc)) from None
+    masks = None
+    if cfg.masks.family == "file":
+        from .masks import make_masks
+
+        try:
+            masks = make_masks("file", cfg.masks.count, tuple(cfg.grid.shape), path=cfg.config_dir / cfg.masks.path)
+        except (OSError, ValueError) as exc:
+            raise CommandError(str(ConfigError(cfg.source_path, [("masks", str(exc))]))) from None
+    bit_depth = None if profile else _plan_bit_depth(cfg)
+    if profile is None and bit_depth is None:
+        raise CommandError(
+            f"{cfg.source_path}: the saturation capacity is unknown (no camera profile, no bit depth), so the plan "
+            "could recommend an exposure that saturates: give [response] profile = '<file from maskrun calibrate>' "
+            "or [response] bit_depth = <ADC bits>")
     rate = args.photon_rate_per_s
-    rate_note = "given on the command line"
-    if rate is None and cfg.simulation is not None:
-        rate, rate_note = cfg.simulation.photon_rate_per_s, "from \\[simulation] photon_rate_per_s"
-    kwargs = dict(photon_rate_per_s=rate) if rate else dict(laser_power_w=cfg.laser.power_w,
-                                                              wavelength_m=cfg.laser.wavelength_m)
-    if not rate:
-        rate_note = "from the laser power, assuming all of it reaches the camera (give --photon-rate-per-s)"
+    if rate is not None:
+        kwargs, rate_note = dict(photon_rate_per_s=rate), "given on the command line"
+    elif cfg.simulation is not None:
+        kwargs = dict(photon_rate_per_s=cfg.simulation.photon_rate_per_s)
+        rate_note = "from \\[simulation] photon_rate_per_s"
+    else:
+        kwargs = dict(laser_power_w=cfg.laser.power_w)
+        rate_note = ("from the laser power, assuming all of it reaches the camera (give --photon-rate-per-s for "
+                     "the measured rate)")
     try:
         plan = plan_photons(
             tuple(cfg.grid.shape),
@@ -174,8 +201,15 @@ def cmd_plan(args) -> int:
             target_phase_precision_rad=args.phase_precision,
             target_relative_error=args.relative_error,
             method=args.method,
+            masks=masks,
+            mask_family=cfg.masks.family,
+            mask_seed=cfg.masks.seed,
+            mask_levels=cfg.masks.levels,
             profile=profile,
             quantum_efficiency=None if profile else cfg.response.quantum_efficiency,
+            bit_depth=bit_depth,
+            offset_dn=cfg.response.offset_dn,
+            gain_dn_per_e=None if profile else cfg.response.gain_dn_per_e,
             wavelength_m=cfg.laser.wavelength_m,
             illuminated_area_m2=cfg.checks.illuminated_area_m2,
             max_energy_per_area_j_per_m2=cfg.checks.max_dose_energy_per_area_j_per_m2,
@@ -184,8 +218,8 @@ def cmd_plan(args) -> int:
         )
     except PlanError as exc:
         raise CommandError(str(exc)) from None
-    console.print(_table(f"Photon budget for {cfg.grid.shape[0]}x{cfg.grid.shape[1]}, K = {cfg.masks.count}",
-                         plan.summary_rows()))
+    console.print(_table(f"Photon budget for {cfg.grid.shape[0]}x{cfg.grid.shape[1]}, K = {cfg.masks.count} "
+                         f"{cfg.masks.family} masks", plan.summary_rows()))
     console.print(f"Photon rate: {rate_note}.")
     warnings = list(plan.warnings)
     darks = dark_frame_advice(cfg.run.dark_frames, plan.passes,

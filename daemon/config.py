@@ -118,6 +118,9 @@ class ResponseConfig(_Table):
     quantum_efficiency: float | None = Field(
         None, gt=0, le=1, description="data-sheet QE; required without a profile, or when the profile has none")
     profile: str | None = Field(None, description="camera profile file from 'maskrun calibrate'; overrides the values above")
+    bit_depth: int | None = Field(None, ge=1, le=32, description="ADC bits: without a profile, 'maskrun plan' takes "
+                                  "the saturation capacity from them, the offset and the gain (default: "
+                                  "[camera.settings] bit_depth when the driver has one)")
 
     @model_validator(mode="after")
     def _values_or_profile(self):
