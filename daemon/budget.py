@@ -306,7 +306,11 @@ class PhotonPlan:
             ("saturation capacity", f"{g(self.saturation_capacity_e)} ({self.saturation_note})", "e-"),
             ("incident photons at the camera", g(self.incident_photons_at_camera), "photons"),
             ("photons on the sample", g(self.photons_on_sample), "photons"),
-            ("energy per area on the sample", g(self.energy_per_area_j_per_m2), "J/m^2"),
+            ("energy per area on the sample",
+             g(self.energy_per_area_j_per_m2) if self.energy_per_area_j_per_m2 is not None
+             else "n/a (no illuminated_area_m2: photons only)", "J/m^2"),
+            ("fluence on the sample", g(None if self.energy_per_area_j_per_m2 is None
+                                        else self.energy_per_area_j_per_m2 * 1e-4), "J/cm^2"),
             ("exposure per frame", g(self.exposure_per_frame_s), "s"),
             ("total exposure", g(self.total_exposure_s), "s"),
             ("feasible under the dose limit", "yes" if self.feasible else "NO", ""),

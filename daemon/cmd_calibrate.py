@@ -170,14 +170,19 @@ def cmd_plan(args) -> int:
             profile = CameraProfile.load(cfg.config_dir / cfg.response.profile)
         except ProfileError as exc:
             raise CommandError(str(exc)) from None
-    masks = None
-    if cfg.masks.family == "file":
-        from .masks import make_masks
+    from .dose import mask_mean_transmission
+    from .masks import make_masks
 
-        try:
-            masks = make_masks("file", cfg.masks.count, tuple(cfg.grid.shape), path=cfg.config_dir / cfg.masks.path)
-        except (OSError, ValueError) as exc:
-            raise CommandError(str(ConfigError(cfg.source_path, [("masks", str(exc))]))) from None
+    try:
+        built = make_masks(cfg.masks.family, cfg.masks.count, tuple(cfg.grid.shape), cfg.masks.seed, cfg.masks.levels,
+                           cfg.config_dir / cfg.masks.path if cfg.masks.path else None)
+    except (OSError, ValueError) as exc:
+        raise CommandError(str(ConfigError(cfg.source_path, [("masks", str(exc))]))) from None
+    masks = built if cfg.masks.family == "file" else None  # the other families are rebuilt (and cached) by the planner
+    # the fraction of the sample's photons the camera counts (before its QE): optics, and the masks when after the sample
+    to_camera = cfg.checks.transmission_sample_to_camera
+    if cfg.checks.modulator_position == "after_sample":
+        to_camera *= mask_mean_transmission(built)
     bit_depth = None if profile else _plan_bit_depth(cfg)
     if profile is None and bit_depth is None:
         raise CommandError(
@@ -212,6 +217,7 @@ def cmd_plan(args) -> int:
             gain_dn_per_e=None if profile else cfg.response.gain_dn_per_e,
             wavelength_m=cfg.laser.wavelength_m,
             illuminated_area_m2=cfg.checks.illuminated_area_m2,
+            optical_transmission=to_camera,
             max_energy_per_area_j_per_m2=cfg.checks.max_dose_energy_per_area_j_per_m2,
             max_photons=cfg.checks.max_dose_photons,
             **kwargs,

@@ -150,7 +150,15 @@ class ChecksConfig(_Table):
         None, gt=0, description="stop the run before the cumulative incident photons on the sample pass this")
     max_dose_energy_per_area_j_per_m2: float | None = Field(
         None, gt=0, description="stop the run before the cumulative energy per area passes this (needs illuminated_area_m2)")
-    illuminated_area_m2: float | None = Field(None, gt=0, description="beam area on the sample, for the energy-per-area dose")
+    illuminated_area_m2: float | None = Field(
+        None, gt=0, description="beam area on the sample, for the energy-per-area dose; without it the dose is "
+        "counted in photons and joules only")
+    modulator_position: Literal["before_sample", "after_sample"] = Field(
+        "after_sample", description="where the modulator sits: 'after_sample' (between sample and camera: the "
+        "masks' mean transmission is divided out of the dose) or 'before_sample'")
+    transmission_sample_to_camera: float = Field(
+        1.0, gt=0, le=1, description="fraction of the light leaving the sample that reaches the camera through "
+        "the optics (lenses, apertures, filters; not the masks), for the dose at the sample")
 
     @model_validator(mode="after")
     def _order(self):
