@@ -66,6 +66,7 @@ __all__ = [
 DEFAULT_SATURATION_FRACTION = 0.85
 _EULER_GAMMA = 0.5772156649015329
 _CRB_MAX_PIXELS = getattr(_bounds, "CRB_MAX_PIXELS", 32 * 32)
+_DENSE_MAX_PIXELS = 48 * 48  # estimator='dense' on request: J is (2 * 2304)^2 float64 = 170 MB at most
 
 
 class PlanError(ValueError):
@@ -130,6 +131,9 @@ def _crb_unit(x, m, mask_count, grid_shape, estimator: str = "auto") -> tuple[fl
         raise PlanError(f"object_estimate must have the grid shape {tuple(grid_shape)}, got {x.shape}")
     pixels = grid_shape[0] * grid_shape[1]
     dense = estimator == "dense" or (estimator == "auto" and pixels <= _CRB_MAX_PIXELS)
+    if estimator == "dense" and pixels > _DENSE_MAX_PIXELS:
+        raise PlanError(f"the dense bound is for grids up to {_DENSE_MAX_PIXELS} pixels (its Fisher matrix is "
+                        f"(2N)^2 numbers); {grid_shape[0]} x {grid_shape[1]} needs estimator='matrix_free' or 'auto'")
     if dense:
         crb = _bounds.poisson_crb(x, m, 1.0, max_pixels=max(pixels, _CRB_MAX_PIXELS))
         how = "dense Fisher information"
