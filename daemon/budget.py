@@ -5,15 +5,18 @@ gets in the way first.
 Precision models (``method``):
 
 * ``"crb"`` - the Poisson Cramér-Rao bound (Kay, Fundamentals of Statistical Signal
-  Processing: Estimation Theory, 1993, ch. 3) computed by
-  ``maskrun.reconstruct.bounds.poisson_crb`` for the actual masks and a representative
-  object (default: uniform amplitude, random phase). Dense linear algebra, so only for
-  small grids (``bounds.CRB_MAX_PIXELS``, 32 x 32). The bound scales exactly as
-  1/photons, so one evaluation gives the photons for any target.
-* ``"shot_noise"`` - the shot-noise rule for large grids: relative error ~
-  sqrt(pixels / photons), about one photon of mean-square error per reconstructed pixel
-  (common practice, no source), ``bounds.shot_noise_relative_error``.
-* ``"auto"`` (default) - the bound for grids up to CRB_MAX_PIXELS, the rule above that.
+  Processing: Estimation Theory, 1993, ch. 3) for the configured mask family and a
+  representative object (default: uniform amplitude, random phase), at every grid size:
+  the dense Fisher information (``bounds.poisson_crb``) up to ``bounds.CRB_MAX_PIXELS``
+  (32 x 32), the matrix-free estimate above (``bounds.poisson_crb_matrix_free``: trace of
+  the inverse Fisher information by random probes and conjugate gradients, 0.5 % standard
+  error). The two agree where both fit, so the photons asked for do not step at the switch.
+  The bound scales exactly as 1/photons, so one evaluation gives the photons for any target.
+* ``"shot_noise"`` - the shot-noise rule: relative error ~ sqrt(pixels / photons), about
+  one photon of mean-square error per reconstructed pixel (common practice, no source),
+  ``bounds.shot_noise_relative_error``. It asks for fewer photons than the bound (1.33
+  photons per pixel for K = 8 octanary masks, 1.9 for K = 4), so it is only on request.
+* ``"auto"`` (default) - the bound.
 
 ``photons`` are *detected* photons (photo-electrons) summed over every frame that goes
 into one estimate: all K masks of all averaged passes.
@@ -63,6 +66,7 @@ __all__ = [
 DEFAULT_SATURATION_FRACTION = 0.85
 _EULER_GAMMA = 0.5772156649015329
 _CRB_MAX_PIXELS = getattr(_bounds, "CRB_MAX_PIXELS", 32 * 32)
+_DENSE_MAX_PIXELS = 48 * 48  # estimator='dense' on request: J is (2 * 2304)^2 float64 = 170 MB at most
 
 
 class PlanError(ValueError):
@@ -97,36 +101,65 @@ def representative_object(grid_shape: tuple[int, int], seed: int = 0) -> np.ndar
     return np.exp(1j * rng.uniform(0.0, 2.0 * np.pi, size=grid_shape))
 
 
-def _default_masks(mask_count: int, grid_shape, seed: int) -> np.ndarray:
-    from ..reconstruct.masks import octanary_masks
+def _default_masks(mask_count: int, grid_shape, seed: int, family: str = "octanary", levels: int = 8) -> np.ndarray:
+    from .masks import make_masks
 
-    return octanary_masks(mask_count, grid_shape, seed=seed)
+    if family == "file":
+        raise PlanError("masks family 'file': pass the loaded masks (masks=...) to plan for them")
+    try:
+        return make_masks(family, mask_count, tuple(grid_shape), seed=seed, levels=levels)
+    except ValueError as exc:
+        raise PlanError(str(exc)) from None
 
 
-def _crb_unit(x, m, mask_count, grid_shape) -> tuple[float, float]:
-    """(photons * CRB relative error^2, brightest/mean pixel) for object x and masks m."""
+def _peak_to_mean(x, m) -> float:
+    from ..reconstruct.propagation import forward
+
+    y = forward(x, m)
+    return float(np.max(y.max(axis=(1, 2)) / y.mean(axis=(1, 2))))
+
+
+def _crb_unit(x, m, mask_count, grid_shape, estimator: str = "auto") -> tuple[float, float, str]:
+    """(photons * CRB relative error^2, brightest/mean pixel, how it was computed) for object x and masks m.
+
+    Dense Fisher information up to CRB_MAX_PIXELS (unless ``estimator`` says 'matrix_free'),
+    the matrix-free estimate above (``bounds.poisson_crb_matrix_free``, 0.5 % standard error).
+    """
     if m.shape != (mask_count, *grid_shape):
         raise PlanError(f"masks must have shape {(mask_count, *grid_shape)}, got {m.shape}")
     if x.shape != tuple(grid_shape):
         raise PlanError(f"object_estimate must have the grid shape {tuple(grid_shape)}, got {x.shape}")
-    crb = _bounds.poisson_crb(x, m, 1.0)
+    pixels = grid_shape[0] * grid_shape[1]
+    dense = estimator == "dense" or (estimator == "auto" and pixels <= _CRB_MAX_PIXELS)
+    if estimator == "dense" and pixels > _DENSE_MAX_PIXELS:
+        raise PlanError(f"the dense bound is for grids up to {_DENSE_MAX_PIXELS} pixels (its Fisher matrix is "
+                        f"(2N)^2 numbers); {grid_shape[0]} x {grid_shape[1]} needs estimator='matrix_free' or 'auto'")
+    if dense:
+        crb = _bounds.poisson_crb(x, m, 1.0, max_pixels=max(pixels, _CRB_MAX_PIXELS))
+        how = "dense Fisher information"
+    else:
+        crb = _bounds.poisson_crb_matrix_free(x, m, 1.0, target_relative_std=0.005)
+        how = (f"matrix-free estimate: trace of the inverse Fisher information by {crb.probes} random probes "
+               f"with conjugate gradients, standard error {100 * crb.relative_std:.2g} %")
+    if not dense and crb.identifiable and crb.relative_std > 0.02:
+        raise PlanError(
+            f"the bound for these {mask_count} masks is poorly determined (standard error "
+            f"{100 * crb.relative_std:.0f} % after {crb.probes} probes): the Fisher information is nearly singular; "
+            "use more masks (K >= 4, octanary masks recommended)")
     if not crb.identifiable or not math.isfinite(crb.relative_error):
         raise PlanError(
-            f"the object is not identifiable from {mask_count} masks (the Fisher information is singular): "
-            "use more masks (K >= 4, octanary masks recommended)"
+            f"the object is not identifiable from these {mask_count} masks (the Fisher information is singular"
+            f"{': some pixel is never lit' if not dense else ''}): use more masks (K >= 4, octanary masks "
+            "recommended)"
         )
-    from ..reconstruct.propagation import forward
-
-    y = forward(x, m)
-    peak = float(np.max(y.max(axis=(1, 2)) / y.mean(axis=(1, 2))))
-    return crb.photons * crb.relative_error**2, peak
+    return crb.photons * crb.relative_error**2, _peak_to_mean(x, m), how
 
 
 @functools.lru_cache(maxsize=16)
-def _crb_default(grid_shape, mask_count, seed) -> tuple[float, float]:
-    """_crb_unit for the default object and octanary masks (cached: the bound costs seconds at 32 x 32)."""
-    return _crb_unit(representative_object(grid_shape, seed), _default_masks(mask_count, grid_shape, seed),
-                     mask_count, grid_shape)
+def _crb_default(grid_shape, mask_count, seed, family, mask_seed, levels, estimator) -> tuple[float, float, str]:
+    """_crb_unit for the default object and the family's masks (cached: the dense bound costs seconds at 32 x 32)."""
+    return _crb_unit(representative_object(grid_shape, seed), _default_masks(mask_count, grid_shape, mask_seed,
+                     family, levels), mask_count, grid_shape, estimator)
 
 
 @dataclass
@@ -137,41 +170,43 @@ class _Precision:
     peak_to_mean: float
 
 
-def _precision_model(grid_shape, mask_count, method, object_estimate, masks, seed) -> _Precision:
+_ESTIMATORS = ("auto", "dense", "matrix_free")
+
+
+def _precision_model(grid_shape, mask_count, method, object_estimate, masks, seed, family="octanary",
+                     mask_seed=None, levels=8, estimator="auto") -> _Precision:
     pixels = grid_shape[0] * grid_shape[1]
+    mask_seed = seed if mask_seed is None else int(mask_seed)
+    if estimator not in _ESTIMATORS:
+        raise PlanError(f"estimator must be one of {_ESTIMATORS}, got {estimator!r}")
     if method == "auto":
-        method = "crb" if pixels <= _CRB_MAX_PIXELS and _bounds is not None else "shot_noise"
+        method = "crb" if _bounds is not None else "shot_noise"
     if method == "crb":
         if _bounds is None:
             raise PlanError("the Cramér-Rao bound needs maskrun.reconstruct.bounds, which is not installed")
-        if pixels > _CRB_MAX_PIXELS:
-            raise PlanError(
-                f"the Cramér-Rao bound is computed only for grids up to {_CRB_MAX_PIXELS} pixels "
-                f"({grid_shape[0]} x {grid_shape[1]} = {pixels}); use method='shot_noise' or 'auto'"
-            )
         if object_estimate is None and masks is None:
-            unit, peak = _crb_default(tuple(grid_shape), mask_count, seed)
+            unit, peak, how = _crb_default(tuple(grid_shape), mask_count, seed, family, mask_seed, levels, estimator)
         else:
             x = representative_object(grid_shape, seed) if object_estimate is None else np.asarray(object_estimate)
-            m = _default_masks(mask_count, grid_shape, seed) if masks is None else np.asarray(masks)
-            unit, peak = _crb_unit(x, m, mask_count, grid_shape)
-        note = (f"Poisson Cramér-Rao bound for {mask_count} masks and "
-                f"{'the given object' if object_estimate is not None else 'a uniform-amplitude random-phase object'}")
+            m = _default_masks(mask_count, grid_shape, mask_seed, family, levels) if masks is None else np.asarray(masks)
+            unit, peak, how = _crb_unit(x, m, mask_count, grid_shape, estimator)
+        what = "the given masks" if masks is not None else f"{family.replace('_', '-')} masks"
+        note = (f"Poisson Cramér-Rao bound for {mask_count} {what} and "
+                f"{'the given object' if object_estimate is not None else 'a uniform-amplitude random-phase object'}"
+                f" ({how}): {unit / pixels:.3g} detected photons per pixel for a relative error of 1")
         return _Precision("crb", note, unit, peak)
     if method == "shot_noise":
         if object_estimate is not None:
             x = np.asarray(object_estimate)
-            m = _default_masks(mask_count, grid_shape, seed) if masks is None else np.asarray(masks)
-            from ..reconstruct.propagation import forward
-
-            y = forward(x, m)
-            peak = float(np.max(y.max(axis=(1, 2)) / y.mean(axis=(1, 2))))
+            m = _default_masks(mask_count, grid_shape, mask_seed, family, levels) if masks is None else np.asarray(masks)
+            peak = _peak_to_mean(x, m)
         else:
             peak = speckle_peak_to_mean(pixels)
         # relative error = sqrt(pixels / photons)  =>  photons * error^2 = pixels
         probe = 1e6 * pixels
         unit = probe * _shot_noise_relative_error(pixels, probe) ** 2
-        return _Precision("shot_noise", "shot-noise rule: relative error ~ sqrt(pixels / photons)", unit, peak)
+        return _Precision("shot_noise", "shot-noise rule: relative error ~ sqrt(pixels / photons) (it asks for "
+                          "fewer photons than the Cramér-Rao bound: a lower estimate)", unit, peak)
     raise PlanError(f"method must be 'auto', 'crb' or 'shot_noise', got {method!r}")
 
 
@@ -184,11 +219,16 @@ def predict_relative_error(
     object_estimate: np.ndarray | None = None,
     masks: np.ndarray | None = None,
     seed: int = 0,
+    mask_family: str = "octanary",
+    mask_seed: int | None = None,
+    mask_levels: int = 8,
+    estimator: str = "auto",
 ) -> float:
     """Expected relative error of the recovered field for ``photons_total`` detected photons
     (all frames that go into the estimate), by the same models as ``plan_photons``."""
     grid_shape = _grid(grid_shape)
-    model = _precision_model(grid_shape, _count(mask_count), method, object_estimate, masks, seed)
+    model = _precision_model(grid_shape, _count(mask_count), method, object_estimate, masks, seed, mask_family,
+                             mask_seed, mask_levels, estimator)
     if not photons_total > 0:
         return math.inf
     return math.sqrt(model.photons_for_unit_error / float(photons_total))
@@ -212,6 +252,8 @@ class PhotonPlan:
     feasible: False when the dose limit forbids the target; infeasible_reason says why.
     achievable_relative_error: best relative error under the dose limit (None without a limit).
     warnings: sentences for the user (saturation, dose, read noise, assumptions).
+    saturation_capacity_e, saturation_note: the capacity the passes were planned with and where it
+        came from (profile, ADC range, given, unknown).
     """
 
     method: str
@@ -237,6 +279,8 @@ class PhotonPlan:
     infeasible_reason: str | None
     achievable_relative_error: float | None
     warnings: list[str] = field(default_factory=list)
+    saturation_capacity_e: float | None = None
+    saturation_note: str = "unknown"
 
     @property
     def frames_total(self) -> int:
@@ -263,9 +307,14 @@ class PhotonPlan:
             ("detected photons per frame", g(self.photons_per_frame), "photons"),
             ("detected photons per pixel, mean / peak",
              f"{g(self.photons_per_pixel_mean)} / {g(self.photons_per_pixel_peak)}", "photons"),
+            ("saturation capacity", f"{g(self.saturation_capacity_e)} ({self.saturation_note})", "e-"),
             ("incident photons at the camera", g(self.incident_photons_at_camera), "photons"),
             ("photons on the sample", g(self.photons_on_sample), "photons"),
-            ("energy per area on the sample", g(self.energy_per_area_j_per_m2), "J/m^2"),
+            ("energy per area on the sample",
+             g(self.energy_per_area_j_per_m2) if self.energy_per_area_j_per_m2 is not None
+             else "n/a (no illuminated_area_m2: photons only)", "J/m^2"),
+            ("fluence on the sample", g(None if self.energy_per_area_j_per_m2 is None
+                                        else self.energy_per_area_j_per_m2 * 1e-4), "J/cm^2"),
             ("exposure per frame", g(self.exposure_per_frame_s), "s"),
             ("total exposure", g(self.total_exposure_s), "s"),
             ("feasible under the dose limit", "yes" if self.feasible else "NO", ""),
@@ -307,9 +356,16 @@ def plan_photons(
     object_estimate: np.ndarray | None = None,
     masks: np.ndarray | None = None,
     seed: int = 0,
+    mask_family: str = "octanary",
+    mask_seed: int | None = None,
+    mask_levels: int = 8,
+    estimator: str = "auto",
     profile: Any = None,
     quantum_efficiency: float | None = None,
     saturation_capacity_e: float | None = None,
+    bit_depth: int | None = None,
+    offset_dn: float = 0.0,
+    gain_dn_per_e: float | None = None,
     read_noise_e: float | None = None,
     saturation_fraction: float = DEFAULT_SATURATION_FRACTION,
     camera_pixels: int | None = None,
@@ -330,9 +386,15 @@ def plan_photons(
     target_relative_error: relative error of the field wanted, min_phi ||x - e^{i phi} x^|| / ||x||.
     method: 'auto' | 'crb' | 'shot_noise' (see the module docstring).
     object_estimate, masks, seed: representative object and masks for the bound (defaults:
-        uniform amplitude random phase; octanary masks of ``seed``).
+        uniform amplitude random phase of ``seed``; masks of ``mask_family`` built with ``mask_seed``
+        (default ``seed``) and ``mask_levels``, as the [masks] table builds them).
+    estimator: 'auto' (dense Fisher information up to CRB_MAX_PIXELS, matrix-free above),
+        'dense' or 'matrix_free'.
     profile: a CameraProfile (quantum efficiency, saturation capacity, read noise); the
         keywords ``quantum_efficiency``, ``saturation_capacity_e``, ``read_noise_e`` override it.
+    bit_depth, offset_dn, gain_dn_per_e: without a saturation capacity (no profile), the ADC range
+        gives one: (2^bit_depth - 1 - offset_dn) / gain_dn_per_e electrons (the full well may be
+        lower; the plan says so).
     saturation_fraction: the brightest pixel must stay below this fraction of saturation.
     camera_pixels: pixels the pattern covers on the camera (default: the grid's pixels).
     peak_to_mean_ratio: brightest/mean pixel of a frame (default: from the object, or speckle).
@@ -389,9 +451,23 @@ def plan_photons(
     if not 0 < qe <= 1:
         raise PlanError(f"quantum_efficiency must be in (0, 1], got {qe}")
     _opt_positive("saturation_capacity_e", saturation_capacity_e)
+    saturation_note = "measured (camera profile)" if profile is not None else "given"
+    if saturation_capacity_e is None and bit_depth is not None and gain_dn_per_e is not None:
+        max_dn = (1 << int(bit_depth)) - 1
+        gain = _opt_positive("gain_dn_per_e", gain_dn_per_e)
+        if not 0 <= float(offset_dn) < max_dn:
+            raise PlanError(f"offset_dn must lie in [0, {max_dn}) for a {int(bit_depth)}-bit camera, got {offset_dn}")
+        saturation_capacity_e = (max_dn - float(offset_dn)) / gain
+        saturation_note = (f"from the ADC range, no camera profile: (2^{int(bit_depth)} - 1 - {float(offset_dn):g} DN) / "
+                           f"{gain:g} DN/e- = {saturation_capacity_e:.5g} e-")
+        warnings.append(f"saturation capacity taken {saturation_note}; the sensor's full well may be lower: "
+                        "run 'maskrun calibrate' for the measured value")
+    elif saturation_capacity_e is None:
+        saturation_note = "unknown"
 
     # --- precision -> photons
-    model = _precision_model(grid_shape, mask_count, method, object_estimate, masks, seed)
+    model = _precision_model(grid_shape, mask_count, method, object_estimate, masks, seed, mask_family, mask_seed,
+                             mask_levels, estimator)
     photons_total = model.photons_for_unit_error / target**2
     pixels_cam = int(camera_pixels) if camera_pixels is not None else grid_shape[0] * grid_shape[1]
     if pixels_cam < 1:
@@ -411,7 +487,8 @@ def plan_photons(
                 f"({saturation_capacity_e:.4g} e-); the plan averages {passes} passes of shorter exposure"
             )
     else:
-        warnings.append("no saturation capacity known (no camera profile): passes not limited by saturation")
+        warnings.append("no saturation capacity known (no camera profile, no bit depth and gain): passes not "
+                        "limited by saturation, so the exposure may saturate; give a camera profile or the bit depth")
 
     rate_at_camera = None
     if laser_power_w is not None:
@@ -502,6 +579,8 @@ def plan_photons(
         infeasible_reason=reason,
         achievable_relative_error=achievable,
         warnings=warnings,
+        saturation_capacity_e=None if saturation_capacity_e is None else float(saturation_capacity_e),
+        saturation_note=saturation_note,
     )
 
 

@@ -31,11 +31,12 @@ from .photon_transfer import (
     PhotonTransferResult,
     StepStatistics,
     analyse_photon_transfer,
+    clipped_dark_fraction,
     mean_and_temporal_variance,
     step_statistics,
 )
 
-__all__ = ["ProgressCallback", "measure_photon_transfer", "default_exposure_series", "CalibrationAborted",
+__all__ = ["photons_per_pixel_per_s_from_power", "ProgressCallback", "measure_photon_transfer", "default_exposure_series", "CalibrationAborted",
            "FlatField", "FlatFieldError", "flat_exposure_s", "measure_flat_field"]
 
 #: progress(done_frames, total_frames, what) is called after every frame.
@@ -51,6 +52,22 @@ class CalibrationAborted(RuntimeError):
     def __init__(self, message: str, steps: Sequence[StepStatistics]):
         self.steps = list(steps)
         super().__init__(message)
+
+
+def photons_per_pixel_per_s_from_power(power_w: float, beam_area_m2: float, pixel_area_m2: float,
+                                       wavelength_m: float) -> float:
+    """Photons per pixel per second of a uniform beam from a power-meter reading.
+
+    Irradiance E = power_w / beam_area_m2 [W/m^2]; mu_p / t = E * pixel_area_m2 * lambda / (h c)
+    (EMVA 1288 R4.0 Linear, the number of photons per pixel, mu_p = A E t_exp / (h c / lambda); from memory).
+    The power must be what falls on ``beam_area_m2`` at the sensor, uniform over the pixels used.
+    """
+    from .dose import photon_energy_j
+
+    for name, v in (("power_w", power_w), ("beam_area_m2", beam_area_m2), ("pixel_area_m2", pixel_area_m2)):
+        if not (math.isfinite(float(v)) and float(v) > 0):
+            raise ValueError(f"{name} must be a finite number > 0, got {v}")
+    return float(power_w) / float(beam_area_m2) * float(pixel_area_m2) / photon_energy_j(wavelength_m)
 
 
 def _grab(camera: Camera, timeout_s: float) -> Frame:
@@ -121,7 +138,7 @@ def measure_photon_transfer(
     total = 2 * frames_per_step * len(exposures)
     done = 0
     max_dn = int(camera.max_dn)
-    dark_stats: list[tuple[float, float]] = []
+    dark_stats: list[tuple[float, float, float]] = []
     steps: list[StepStatistics] = []
     saved_exposure = camera.exposure_s
 
@@ -140,7 +157,7 @@ def measure_photon_transfer(
         for t in exposures:
             camera.exposure_s = t
             frames = _take_frames(camera, t, frames_per_step, discard_frames, 2 * t + timeout_margin_s)
-            dark_stats.append(mean_and_temporal_variance(frames))
+            dark_stats.append((*mean_and_temporal_variance(frames), clipped_dark_fraction(frames, max_dn)))
             tick(f"dark {t:.4g} s")
         safety_box.open_shutter()
         for t, darks in zip(exposures, dark_stats):

@@ -62,8 +62,13 @@ class CameraProfile(BaseModel):
 
     gain_dn_per_e: overall system gain K [DN/e-].
     offset_dn: dark offset at zero exposure [DN].
-    dark_noise_e: dark noise sigma_d = sigma_y.dark / K [e-].
-    read_noise_e: dark noise with the quantisation noise removed [e-] (optional).
+    dark_noise_e: dark noise sigma_d = sqrt(sigma_y.dark^2 - 1/12) / K [e-] (EMVA 1288 R4.0 Linear model,
+        quantisation removed; the one definition, ``photon_transfer.dark_noise_e``); an upper limit when
+        the dark noise was quantisation-limited.
+    read_noise_e: the same number (kept for older readers), None when only an upper limit is known.
+    measured: False when the photon transfer found the camera outside what it can measure
+        (``range_warnings`` says why); use such a profile's numbers with care.
+    range_warnings: the reasons, one sentence each.
     dark_current_e_per_s: [e-/s] (optional).
     saturation_capacity_e: electrons at the variance peak [e-].
     quantum_efficiency: eta in (0, 1] at ``wavelength_m`` (None if the photons were not known).
@@ -98,6 +103,8 @@ class CameraProfile(BaseModel):
     binning: int = Field(default=1, ge=1)
     created: _dt.datetime = Field(default_factory=lambda: _dt.datetime.now(_dt.timezone.utc))
     flat_field_file: str | None = None
+    measured: bool = True
+    range_warnings: list[str] = Field(default_factory=list)
 
     @field_validator("frame_shape")
     @classmethod
@@ -156,6 +163,8 @@ class CameraProfile(BaseModel):
             camera_gain_setting=float(camera.gain),
             binning=int(camera.binning),
             flat_field_file=flat_field_file,
+            measured=bool(result.within_range),
+            range_warnings=list(result.range_warnings),
         )
 
     # --------------------------------------------------------------- file I/O

@@ -31,6 +31,13 @@ def register(sub) -> None:
     p.add_argument(UNATTENDED_OPTION, dest="ack", action="store_true", help="acknowledge the laser-safety notice")
     p.add_argument("--uniform-light-ready", action="store_true",
                    help="real benches: confirm the camera sees uniform light (sample and mask removed, diffuser in)")
+    p.add_argument("--photons-per-pixel-per-s", type=float,
+                   help="known irradiance on the sensor as photons per pixel per second: the quantum efficiency is "
+                   "then measured")
+    p.add_argument("--power-w", type=float, help="power-meter reading at the sensor plane, watts (with --beam-area-m2 "
+                   "and --pixel-pitch-m): gives the irradiance, so the quantum efficiency is measured")
+    p.add_argument("--beam-area-m2", type=float, help="area the measured power is spread over at the sensor, m^2")
+    p.add_argument("--pixel-pitch-m", type=float, help="the camera's pixel pitch (square pixels, before binning), m")
     p.set_defaults(func=cmd_calibrate)
 
     p = sub.add_parser("plan", help="photons, exposure and passes needed for a wanted precision (Cramér-Rao bound "
@@ -80,6 +87,33 @@ def _uniform_light(bench, console: Console, ready: bool) -> float | None:
     return None
 
 
+def _given_irradiance(args, cfg, camera) -> tuple[float, str] | None:
+    """(photons per pixel per second, how it was given) from the command line, or None."""
+    from .calibration import photons_per_pixel_per_s_from_power
+    from .cli import CommandError
+
+    meter = (args.power_w, args.beam_area_m2, args.pixel_pitch_m)
+    if args.photons_per_pixel_per_s is not None:
+        if any(v is not None for v in meter):
+            raise CommandError("give --photons-per-pixel-per-s or the power-meter reading (--power-w, "
+                               "--beam-area-m2, --pixel-pitch-m), not both")
+        if not args.photons_per_pixel_per_s > 0:
+            raise CommandError(f"--photons-per-pixel-per-s must be > 0, got {args.photons_per_pixel_per_s}")
+        return float(args.photons_per_pixel_per_s), "given on the command line"
+    if all(v is None for v in meter):
+        return None
+    if any(v is None for v in meter):
+        raise CommandError("the power-meter reading needs all three: --power-w, --beam-area-m2 and --pixel-pitch-m")
+    binning = int(getattr(camera, "binning", 1) or 1)
+    pixel_area = (args.pixel_pitch_m * binning) ** 2
+    try:
+        rate = photons_per_pixel_per_s_from_power(args.power_w, args.beam_area_m2, pixel_area, cfg.laser.wavelength_m)
+    except ValueError as exc:
+        raise CommandError(str(exc)) from None
+    return rate, (f"from the power meter ({args.power_w:.4g} W over {args.beam_area_m2:.4g} m^2, pixel "
+                  f"{args.pixel_pitch_m:.4g} m x binning {binning}, {cfg.laser.wavelength_m * 1e9:.1f} nm)")
+
+
 def cmd_calibrate(args) -> int:
     from .bench import build_bench
     from .calibration import (FlatFieldError, default_exposure_series, flat_exposure_s, measure_flat_field,
@@ -100,6 +134,10 @@ def cmd_calibrate(args) -> int:
         acknowledge(cfg.laser, console, unattended=args.ack, operator=cfg.run.operator)
         bench.open()
         known_irradiance = _uniform_light(bench, console, args.uniform_light_ready)
+        given = _given_irradiance(args, cfg, bench.camera)
+        if given is not None:
+            known_irradiance, how = given
+            console.print(f"Irradiance {how}: {known_irradiance:.4g} photons per pixel per second.")
         if not bench.safety.interlock_closed():
             raise CommandError("interlock reads OPEN: close the enclosure before calibrating (the shutter must open)")
         try:
@@ -139,6 +177,14 @@ def cmd_calibrate(args) -> int:
     png = Path(args.plot) if args.plot else out.with_suffix(".png")
     plot_photon_transfer(result, png)
     console.print(_table("Photon transfer (EMVA 1288 Release 4.0 Linear)", result.summary_rows()))
+    for w in result.range_warnings:
+        console.print(f"[yellow]warning:[/] {escape(w)}")
+    if result.range_warnings:
+        console.print("[yellow]The profile is marked NOT MEASURED[/] (measured = false): the camera is outside what "
+                      "photon transfer can measure in this mode.")
+    if result.quantum_efficiency is None:
+        console.print("Quantum efficiency not measured (the irradiance is unknown): give --photons-per-pixel-per-s, "
+                      "or --power-w with --beam-area-m2 and --pixel-pitch-m, to measure it.")
     if flat is not None:
         console.print(f"Flat field: {flat.frames} flat and {flat.dark_frames} dark frames at {flat.exposure_s:.4g} s, "
                       f"mean signal {flat.mean_signal_dn:.1f} DN, response spread (PRNU) {100 * flat.prnu_fraction:.2f} % "
@@ -148,25 +194,62 @@ def cmd_calibrate(args) -> int:
     return 0
 
 
+def _plan_bit_depth(cfg) -> int | None:
+    """ADC bits for the saturation capacity without a profile: [response] bit_depth, else the driver setting."""
+    if cfg.response.bit_depth is not None:
+        return int(cfg.response.bit_depth)
+    value = cfg.camera.settings.get("bit_depth")
+    return int(value) if isinstance(value, int) and not isinstance(value, bool) else None
+
+
 def cmd_plan(args) -> int:
     from .budget import PlanError, dark_frame_advice, plan_photons
-    from .camera_profile import CameraProfile
+    from .camera_profile import CameraProfile, ProfileError
     from .cli import CommandError
-    from .config import load_config
+    from .config import ConfigError, load_config
 
     console = Console(highlight=False)
     cfg = load_config(args.config)
     profile = None
     if cfg.response.profile:
-        profile = CameraProfile.load(cfg.config_dir / cfg.response.profile)
+        try:
+            profile = CameraProfile.load(cfg.config_dir / cfg.response.profile)
+        except ProfileError as exc:
+            raise CommandError(str(exc)) from None
+    from .dose import mask_mean_transmission
+    from .masks import make_masks
+
+    try:
+        built = make_masks(cfg.masks.family, cfg.masks.count, tuple(cfg.grid.shape), cfg.masks.seed, cfg.masks.levels,
+                           cfg.config_dir / cfg.masks.path if cfg.masks.path else None)
+    except (OSError, ValueError) as exc:
+        raise CommandError(str(ConfigError(cfg.source_path, [("masks", str(exc))]))) from None
+    masks = built if cfg.masks.family == "file" else None  # the other families are rebuilt (and cached) by the planner
+    # the fraction of the sample's photons the camera counts (before its QE): optics, and the masks when after the sample
+    to_camera = cfg.checks.transmission_sample_to_camera
+    if cfg.checks.modulator_position == "after_sample":
+        to_camera *= mask_mean_transmission(built)
+    profile_warning = ""
+    if profile is not None and not profile.measured:
+        profile_warning = ("the camera profile is marked not measured (the photon transfer found the camera outside "
+                           "its range: " + "; ".join(profile.range_warnings or ["no reason recorded"]) + "): its "
+                           "saturation capacity and noise may be wrong")
+    bit_depth = None if profile else _plan_bit_depth(cfg)
+    if profile is None and bit_depth is None:
+        raise CommandError(
+            f"{cfg.source_path}: the saturation capacity is unknown (no camera profile, no bit depth), so the plan "
+            "could recommend an exposure that saturates: give [response] profile = '<file from maskrun calibrate>' "
+            "or [response] bit_depth = <ADC bits>")
     rate = args.photon_rate_per_s
-    rate_note = "given on the command line"
-    if rate is None and cfg.simulation is not None:
-        rate, rate_note = cfg.simulation.photon_rate_per_s, "from \\[simulation] photon_rate_per_s"
-    kwargs = dict(photon_rate_per_s=rate) if rate else dict(laser_power_w=cfg.laser.power_w,
-                                                              wavelength_m=cfg.laser.wavelength_m)
-    if not rate:
-        rate_note = "from the laser power, assuming all of it reaches the camera (give --photon-rate-per-s)"
+    if rate is not None:
+        kwargs, rate_note = dict(photon_rate_per_s=rate), "given on the command line"
+    elif cfg.simulation is not None:
+        kwargs = dict(photon_rate_per_s=cfg.simulation.photon_rate_per_s)
+        rate_note = "from \\[simulation] photon_rate_per_s"
+    else:
+        kwargs = dict(laser_power_w=cfg.laser.power_w)
+        rate_note = ("from the laser power, assuming all of it reaches the camera (give --photon-rate-per-s for "
+                     "the measured rate)")
     try:
         plan = plan_photons(
             tuple(cfg.grid.shape),
@@ -174,20 +257,28 @@ def cmd_plan(args) -> int:
             target_phase_precision_rad=args.phase_precision,
             target_relative_error=args.relative_error,
             method=args.method,
+            masks=masks,
+            mask_family=cfg.masks.family,
+            mask_seed=cfg.masks.seed,
+            mask_levels=cfg.masks.levels,
             profile=profile,
             quantum_efficiency=None if profile else cfg.response.quantum_efficiency,
+            bit_depth=bit_depth,
+            offset_dn=cfg.response.offset_dn,
+            gain_dn_per_e=None if profile else cfg.response.gain_dn_per_e,
             wavelength_m=cfg.laser.wavelength_m,
             illuminated_area_m2=cfg.checks.illuminated_area_m2,
+            optical_transmission=to_camera,
             max_energy_per_area_j_per_m2=cfg.checks.max_dose_energy_per_area_j_per_m2,
             max_photons=cfg.checks.max_dose_photons,
             **kwargs,
         )
     except PlanError as exc:
         raise CommandError(str(exc)) from None
-    console.print(_table(f"Photon budget for {cfg.grid.shape[0]}x{cfg.grid.shape[1]}, K = {cfg.masks.count}",
-                         plan.summary_rows()))
+    console.print(_table(f"Photon budget for {cfg.grid.shape[0]}x{cfg.grid.shape[1]}, K = {cfg.masks.count} "
+                         f"{cfg.masks.family} masks", plan.summary_rows()))
     console.print(f"Photon rate: {rate_note}.")
-    warnings = list(plan.warnings)
+    warnings = ([profile_warning] if profile_warning else []) + list(plan.warnings)
     darks = dark_frame_advice(cfg.run.dark_frames, plan.passes,
                               accumulating=cfg.reconstruction.enabled and cfg.reconstruction.mode == "accumulate")
     if darks:

@@ -39,7 +39,9 @@ class LaserConfig(_Table):
     """The source. Shown in the safety notice before every run."""
 
     description: str = "laser"
-    laser_class: LaserClass = Field(description="IEC 60825-1 class of the source")
+    laser_class: LaserClass | None = Field(
+        None, description="IEC 60825-1 class of the source; checked against wavelength and power (never below "
+        "what they give); leave out for sources below 180 nm (X-ray, EUV): those get a radiation-protection notice")
     wavelength_m: float = Field(gt=1e-12, lt=1e-3)
     power_w: float = Field(gt=0)
     eyewear: str = Field(
@@ -47,6 +49,17 @@ class LaserConfig(_Table):
         description="what eyewear the site requires",
     )
     safety_officer: str = Field(default="the site's laser safety officer", description="who to contact")
+    radiation_protection_officer: str = Field(
+        default="the site's radiation protection officer", description="who to contact for ionising sources")
+
+    @model_validator(mode="after")
+    def _class_fits_the_beam(self):
+        from .laser_hazard import declaration_problem
+
+        problem = declaration_problem(self.laser_class, self.wavelength_m, self.power_w)
+        if problem:
+            raise ValueError(problem)
+        return self
 
 
 class GridConfig(_Table):
@@ -105,6 +118,9 @@ class ResponseConfig(_Table):
     quantum_efficiency: float | None = Field(
         None, gt=0, le=1, description="data-sheet QE; required without a profile, or when the profile has none")
     profile: str | None = Field(None, description="camera profile file from 'maskrun calibrate'; overrides the values above")
+    bit_depth: int | None = Field(None, ge=1, le=32, description="ADC bits: without a profile, 'maskrun plan' takes "
+                                  "the saturation capacity from them, the offset and the gain (default: "
+                                  "[camera.settings] bit_depth when the driver has one)")
 
     @model_validator(mode="after")
     def _values_or_profile(self):
@@ -134,7 +150,15 @@ class ChecksConfig(_Table):
         None, gt=0, description="stop the run before the cumulative incident photons on the sample pass this")
     max_dose_energy_per_area_j_per_m2: float | None = Field(
         None, gt=0, description="stop the run before the cumulative energy per area passes this (needs illuminated_area_m2)")
-    illuminated_area_m2: float | None = Field(None, gt=0, description="beam area on the sample, for the energy-per-area dose")
+    illuminated_area_m2: float | None = Field(
+        None, gt=0, description="beam area on the sample, for the energy-per-area dose; without it the dose is "
+        "counted in photons and joules only")
+    modulator_position: Literal["before_sample", "after_sample"] = Field(
+        "after_sample", description="where the modulator sits: 'after_sample' (between sample and camera: the "
+        "masks' mean transmission is divided out of the dose) or 'before_sample'")
+    transmission_sample_to_camera: float = Field(
+        1.0, gt=0, le=1, description="fraction of the light leaving the sample that reaches the camera through "
+        "the optics (lenses, apertures, filters; not the masks), for the dose at the sample")
 
     @model_validator(mode="after")
     def _order(self):

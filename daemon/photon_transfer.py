@@ -17,9 +17,12 @@ Quantities (EMVA 1288 R4.0 Linear notation, units in brackets):
   from the smallest signal up to 70 % of the saturation signal
 - saturation the step where sigma_y^2 peaks; saturation capacity
   mu_e.sat = (mu_y.sat - mu_y.dark) / K [e-]
-- dark noise sigma_d = sigma_y.dark / K [e-]; we also report the value with the
-  quantisation noise (1/12 DN^2) removed, sqrt(sigma_y.dark^2 - 1/12) / K,
-  which is the read noise of the sensor itself (EMVA 1288 model, sec. 2)
+- dark noise sigma_d [e-]: ONE definition everywhere in maskrun, the dark noise of the
+  EMVA 1288 linear model, sigma_y.dark^2 = K^2 sigma_d^2 + sigma_q^2 with the quantisation
+  noise sigma_q^2 = 1/12 DN^2 (EMVA 1288 R4.0 Linear, sec. 2, mathematical model; from memory),
+  so sigma_d = sqrt(sigma_y.dark^2 - 1/12) / K; ``dark_noise_dn`` is the measured
+  sigma_y.dark itself (DN, quantisation included). ``read_noise_e`` is the same number
+  (kept for older readers of the profile)
 - linearity error: straight-line fit of mu_y - mu_y.dark against mu_p (photons
   per pixel, when known) or against the exposure time (constant light), over
   the steps between 5 % and 95 % of the saturation signal; the relative
@@ -30,7 +33,23 @@ Quantities (EMVA 1288 R4.0 Linear notation, units in brackets):
 
 The fit ranges (0-70 % for the photon transfer, 5-95 % for linearity) and the
 two-frame variance follow EMVA 1288 (from memory of Release 3.1 / 4.0 Linear,
-sections 6 and 8). The illumination must be spatially uniform (no sample, no
+sections 6 and 8).
+
+Range checks (``range_warnings``; any of them marks the result ``within_range = False``
+and the profile built from it as not measured):
+
+- quantisation-limited dark noise: sigma_y.dark^2 below 0.24 DN^2 (sigma_y.dark < 0.49 DN):
+  EMVA 1288 then gives only an upper limit, sigma_d < 0.49 / K (from memory of Release
+  3.1 / 4.0 Linear, dark noise section); ``dark_noise_e`` is that upper limit and
+  ``read_noise_e`` is None (unknown, not zero);
+- clipped dark frames: more than 0.1 % of the dark pixels at 0 DN or at the ADC maximum
+  (EMVA 1288 asks for an offset that keeps the dark signal off zero, from memory; the
+  0.1 % is common practice, no source): the dark mean and noise are biased;
+- saturation capacity below 20 x the dark noise (dynamic range mu_e.sat / sigma_d < 20,
+  26 dB; common practice, no source): the photon transfer range is too short for the
+  gain to be fitted reliably;
+- fewer than 10 steps in the 0-70 % gain fit (EMVA 1288 asks for about 50 steps over the
+  whole range, from memory; 10 in the fit is common practice, no source). The illumination must be spatially uniform (no sample, no
 mask; a diffuser in front of the camera) for the numbers to mean what they say.
 """
 
@@ -45,6 +64,11 @@ import numpy as np
 
 __all__ = [
     "QUANTISATION_VARIANCE_DN2",
+    "QUANTISATION_LIMITED_DARK_VARIANCE_DN2",
+    "MAX_DARK_CLIPPED_FRACTION",
+    "MIN_DYNAMIC_RANGE",
+    "MIN_MEASURED_FIT_STEPS",
+    "dark_noise_e",
     "GAIN_FIT_FRACTION",
     "LINEARITY_RANGE",
     "PhotonTransferError",
@@ -69,6 +93,14 @@ LINEARITY_RANGE = (0.05, 0.95)
 _PAST_PEAK_DROP = 0.8
 #: Fewest steps the photon transfer fit accepts.
 _MIN_FIT_STEPS = 3
+#: sigma_y.dark^2 below this is quantisation-limited (EMVA 1288, from memory): 0.24 DN^2, i.e. 0.49 DN.
+QUANTISATION_LIMITED_DARK_VARIANCE_DN2 = 0.24
+#: Dark pixels at 0 or the ADC maximum above this fraction: the dark frames clip (common practice, no source).
+MAX_DARK_CLIPPED_FRACTION = 0.001
+#: Saturation capacity must be at least this many times the dark noise (common practice, no source).
+MIN_DYNAMIC_RANGE = 20.0
+#: Fewest steps in the gain fit for a measured profile (common practice, no source).
+MIN_MEASURED_FIT_STEPS = 10
 
 
 # ----------------------------------------------------------------------------- errors
@@ -103,6 +135,7 @@ class StepStatistics:
     variance_dn2 / variance_dark_dn2: temporal variances sigma_y^2 and sigma_y.dark^2 [DN^2].
     clipped_fraction: fraction of bright pixels at the ADC maximum (``max_dn``), or 0 if unknown.
     n_pixels: pixels per frame.
+    dark_clipped_fraction: fraction of dark pixels at 0 DN or at ``max_dn`` (0 if unknown).
     """
 
     exposure_s: float
@@ -113,6 +146,24 @@ class StepStatistics:
     photons_per_pixel: float | None = None
     clipped_fraction: float = 0.0
     n_pixels: int = 0
+    dark_clipped_fraction: float = 0.0
+
+
+def dark_noise_e(dark_variance_dn2: float, gain_dn_per_e: float) -> float:
+    """The dark noise sigma_d [e-] from sigma_y.dark^2 [DN^2]: sqrt(sigma_y.dark^2 - 1/12) / K, the one
+    definition maskrun uses (EMVA 1288 R4.0 Linear, sec. 2: sigma_y.dark^2 = K^2 sigma_d^2 + sigma_q^2)."""
+    return math.sqrt(max(float(dark_variance_dn2) - QUANTISATION_VARIANCE_DN2, 0.0)) / float(gain_dn_per_e)
+
+
+def clipped_dark_fraction(frames: Sequence[np.ndarray], max_dn: int | None) -> float:
+    """Fraction of pixels at 0 DN or at the ADC maximum in dark frames."""
+    total = 0
+    for f in frames:
+        n = np.count_nonzero(f <= 0)
+        if max_dn is not None:
+            n += np.count_nonzero(f >= max_dn)
+        total += int(n)
+    return total / max(sum(f.size for f in frames), 1)
 
 
 def mean_and_temporal_variance(frames: Sequence[np.ndarray]) -> tuple[float, float]:
@@ -146,16 +197,20 @@ def step_statistics(
 ) -> StepStatistics:
     """Reduce the frames of one exposure step (>= 2 bright, >= 2 dark) to EMVA statistics.
 
-    dark_frames may also be an already reduced (mean_dn, variance_dn2) tuple of floats.
+    dark_frames may also be an already reduced (mean_dn, variance_dn2) or (mean_dn, variance_dn2,
+    clipped_fraction) tuple of floats.
 
     sigma_y^2 = var(y_A - y_B) / 2 (EMVA 1288 R4.0 Linear, sec. 6); with more than two
     frames the variance is averaged over disjoint pairs.
     """
     mean, var = mean_and_temporal_variance(list(bright_frames))
-    if isinstance(dark_frames, tuple) and len(dark_frames) == 2 and np.ndim(dark_frames[0]) == 0:
-        mean_d, var_d = float(dark_frames[0]), float(dark_frames[1])  # already reduced (mean, variance)
+    dark_clipped = 0.0
+    if isinstance(dark_frames, tuple) and len(dark_frames) in (2, 3) and np.ndim(dark_frames[0]) == 0:
+        mean_d, var_d = float(dark_frames[0]), float(dark_frames[1])  # already reduced (mean, variance[, clipped])
+        dark_clipped = float(dark_frames[2]) if len(dark_frames) == 3 else 0.0
     else:
         mean_d, var_d = mean_and_temporal_variance(list(dark_frames))
+        dark_clipped = clipped_dark_fraction(list(dark_frames), max_dn)
         if bright_frames[0].shape != dark_frames[0].shape:
             raise ValueError(
                 f"bright frames {bright_frames[0].shape} and dark frames {dark_frames[0].shape} differ in shape"
@@ -172,6 +227,7 @@ def step_statistics(
         photons_per_pixel=None if photons_per_pixel is None else float(photons_per_pixel),
         clipped_fraction=clipped,
         n_pixels=int(bright_frames[0].size),
+        dark_clipped_fraction=dark_clipped,
     )
 
 
@@ -185,10 +241,14 @@ class PhotonTransferResult:
         gain_fit_intercept_dn2: intercept of the photon transfer fit (ideally ~0).
         gain_fit_steps: number of steps in the 0-70 % fit.
         offset_dn: mu_y.dark at zero exposure (intercept of mu_y.dark vs exposure).
-        dark_noise_dn: sigma_y.dark at zero exposure (intercept of sigma_y.dark^2 vs exposure).
-        dark_noise_e: sigma_d = sigma_y.dark / K (EMVA R4.0 Linear definition, includes quantisation).
-        read_noise_e: sqrt(sigma_y.dark^2 - 1/12) / K, the sensor's own dark noise without
-            quantisation noise (0 if sigma_y.dark^2 < 1/12).
+        dark_noise_dn: sigma_y.dark at zero exposure (intercept of sigma_y.dark^2 vs exposure), DN,
+            quantisation included.
+        dark_noise_e: sigma_d = sqrt(sigma_y.dark^2 - 1/12) / K (``dark_noise_e()``); when the dark
+            noise is quantisation-limited, the EMVA upper limit 0.49 / K.
+        read_noise_e: the same as dark_noise_e, or None when quantisation-limited (unknown, not 0).
+        dark_noise_upper_limit: True when dark_noise_e is only an upper limit.
+        range_warnings: why the camera is outside what photon transfer can measure (empty if fine).
+        within_range: no range warning (a profile from this result counts as measured).
         dark_current_e_per_s: slope of mu_y.dark vs exposure divided by K (nan with one exposure).
         saturation_index: step where sigma_y^2 peaks.
         saturation_mean_dn: mu_y at that step; saturation_signal_dn = mu_y.sat - mu_y.dark.
@@ -210,7 +270,7 @@ class PhotonTransferResult:
     offset_dn: float
     dark_noise_dn: float
     dark_noise_e: float
-    read_noise_e: float
+    read_noise_e: float | None
     dark_current_e_per_s: float
     saturation_index: int
     saturation_mean_dn: float
@@ -238,6 +298,12 @@ class PhotonTransferResult:
     in_linearity_fit: np.ndarray
     linearity_deviation_pct: np.ndarray
     steps: list[StepStatistics] = field(default_factory=list, repr=False)
+    dark_noise_upper_limit: bool = False
+    range_warnings: list[str] = field(default_factory=list)
+
+    @property
+    def within_range(self) -> bool:
+        return not self.range_warnings
 
     @property
     def signal_dn(self) -> np.ndarray:
@@ -259,9 +325,9 @@ class PhotonTransferResult:
             ("overall system gain K", fmt(self.gain_dn_per_e), "DN/e-"),
             ("inverse gain 1/K", fmt(1.0 / self.gain_dn_per_e), "e-/DN"),
             ("dark offset", fmt(self.offset_dn), "DN"),
-            ("dark noise sigma_y.dark", fmt(self.dark_noise_dn), "DN"),
-            ("dark noise sigma_d", fmt(self.dark_noise_e), "e-"),
-            ("read noise (quantisation removed)", fmt(self.read_noise_e), "e-"),
+            ("temporal dark noise sigma_y.dark (quantisation included)", fmt(self.dark_noise_dn), "DN"),
+            ("dark noise sigma_d (quantisation removed)",
+             ("< " if self.dark_noise_upper_limit else "") + fmt(self.dark_noise_e), "e-"),
             ("dark current", fmt(self.dark_current_e_per_s), "e-/s"),
             ("saturation capacity", fmt(self.saturation_capacity_e), "e-"),
             ("saturation signal", fmt(self.saturation_signal_dn), "DN"),
@@ -270,6 +336,7 @@ class PhotonTransferResult:
             ("linearity deviation min / max",
              f"{fmt(self.linearity_error_min_pct, 3)} / {fmt(self.linearity_error_max_pct, 3)}", "%"),
             ("steps in gain fit", str(self.gain_fit_steps), "1"),
+            ("within the range photon transfer measures", "yes" if self.within_range else "NO (see warnings)", ""),
         ]
 
 
@@ -376,7 +443,34 @@ def analyse_photon_transfer(
     else:
         offset, var_d0, dark_current = float(mean_d[0]), float(var_d[0]), float("nan")
     dark_noise_dn = math.sqrt(var_d0)
-    read_noise_e = math.sqrt(max(var_d0 - QUANTISATION_VARIANCE_DN2, 0.0)) / gain
+    range_warnings: list[str] = []
+    upper_limit = var_d0 < QUANTISATION_LIMITED_DARK_VARIANCE_DN2
+    if upper_limit:
+        sigma_d = math.sqrt(QUANTISATION_LIMITED_DARK_VARIANCE_DN2) / gain
+        read_noise = None
+        range_warnings.append(
+            f"the dark noise ({dark_noise_dn:.2f} DN) is below the rounding step: quantisation-limited "
+            f"(sigma_y.dark^2 < {QUANTISATION_LIMITED_DARK_VARIANCE_DN2} DN^2, EMVA 1288), so only an upper limit "
+            f"sigma_d < {sigma_d:.3g} e- is known; calibrate at a higher camera gain to measure it")
+    else:
+        sigma_d = dark_noise_e(var_d0, gain)
+        read_noise = sigma_d
+    dark_clipped = np.array([s.dark_clipped_fraction for s in steps], float)
+    if float(dark_clipped.max()) > MAX_DARK_CLIPPED_FRACTION:
+        range_warnings.append(
+            f"the dark frames clip: {100 * float(dark_clipped.max()):.2g} % of dark pixels at 0 DN or the ADC maximum "
+            f"(more than {100 * MAX_DARK_CLIPPED_FRACTION:g} %), so the offset and dark noise are biased; raise the "
+            "camera's black level (offset) so that the dark signal stays off zero")
+    capacity = sat_signal / gain
+    if capacity < MIN_DYNAMIC_RANGE * sigma_d:
+        range_warnings.append(
+            f"the saturation capacity ({capacity:.3g} e-) is less than {MIN_DYNAMIC_RANGE:g} x the dark noise "
+            f"({sigma_d:.3g} e-): the photon transfer range is too short to fit the gain reliably; lower the camera "
+            "gain or use a mode with more bits")
+    if int(in_gain.sum()) < MIN_MEASURED_FIT_STEPS:
+        range_warnings.append(
+            f"only {int(in_gain.sum())} steps lie in the 0-{100 * gain_fit_fraction:.0f} % gain fit (fewer than "
+            f"{MIN_MEASURED_FIT_STEPS}; EMVA 1288 asks for about 50 steps over the range): calibrate with more steps")
 
     # --- linearity over 5-95 % of saturation.
     have_mu_p = bool(np.all(np.isfinite(mu_p)))
@@ -409,13 +503,13 @@ def analyse_photon_transfer(
         gain_fit_steps=int(in_gain.sum()),
         offset_dn=float(offset),
         dark_noise_dn=dark_noise_dn,
-        dark_noise_e=dark_noise_dn / gain,
-        read_noise_e=read_noise_e,
+        dark_noise_e=sigma_d,
+        read_noise_e=read_noise,
         dark_current_e_per_s=float(dark_current),
         saturation_index=sat,
         saturation_mean_dn=float(mean[sat]),
         saturation_signal_dn=sat_signal,
-        saturation_capacity_e=sat_signal / gain,
+        saturation_capacity_e=capacity,
         saturation_photons_per_pixel=sat_photons,
         responsivity_dn_per_photon=responsivity,
         quantum_efficiency=qe,
@@ -438,6 +532,8 @@ def analyse_photon_transfer(
         in_linearity_fit=in_lin,
         linearity_deviation_pct=deviation,
         steps=steps,
+        dark_noise_upper_limit=upper_limit,
+        range_warnings=range_warnings,
     )
 
 

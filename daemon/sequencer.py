@@ -291,19 +291,21 @@ class Sequencer:
         ch = self.bench.config.checks
         if ch.max_dose_photons is None and ch.max_dose_energy_per_area_j_per_m2 is None:
             return None
-        from .dose import DoseLedger
+        from .dose import DoseLedger, mask_mean_transmission
 
         ledger = DoseLedger(
-            illuminated_area_m2=ch.illuminated_area_m2 or 1.0,
             wavelength_m=self.bench.config.laser.wavelength_m,
+            illuminated_area_m2=ch.illuminated_area_m2,  # None: photons and joules only, never a made-up area
             max_energy_per_area_j_per_m2=ch.max_dose_energy_per_area_j_per_m2,
             max_photons=ch.max_dose_photons,
+            optical_transmission=ch.transmission_sample_to_camera,
+            modulator_position=ch.modulator_position,
+            mask_transmission=mask_mean_transmission(self.bench.masks),
             limit_scope="run",
         )
         if self.plan.dose_photons_before > 0:
             # frames already in the file (resume): counted, without raising here (checked before each frame)
-            ledger.run.photons = ledger.photons_on_sample(self.plan.dose_photons_before)
-            ledger.run.energy_per_area_j_per_m2 = ledger.energy_per_area(ledger.run.photons)
+            ledger.set_run_photons(ledger.photons_on_sample(self.plan.dose_photons_before))
         return ledger
 
     # --- events --------------------------------------------------------------
@@ -746,8 +748,8 @@ class Sequencer:
         if self.dose.remaining_photons() <= 0 or (self._last_photons > 0 and self.dose.would_exceed(self._last_photons)):
             t = self.dose.run
             raise DoseLimitStop(
-                f"dose limit: the next frame (about {self._last_photons:.3g} photons) would pass the limit "
-                f"(so far {t.photons:.4g} photons, {t.energy_per_area_j_per_m2:.4g} J/m^2 on the sample); "
+                f"dose limit: the next frame (about {self._last_photons:.3g} photons at the camera) would pass "
+                f"the limit (so far {t.describe()}); "
                 "stopped before exposing. Frames taken are kept; raise the limit or move to a fresh position"
             )
 
