@@ -130,6 +130,12 @@ def resume_foreground(path: str | Path, req: RunRequest, console: Console) -> Ru
     path = Path(path)
     point = resume_point(path)  # ResumeError: finished, still being written, nothing to do
     cfg = parse_config(point.config_text, str(path))
+    if point.finish_only:  # every frame set is in: no bench, no light, no notice (daemon.finish)
+        from .finish import finish_run_file
+
+        console.print(f"Finishing [bold]{escape(str(path))}[/]: all {point.passes} frame sets are in the file; "
+                      f"{escape(point.note())}")
+        return finish_run_file(point, cfg, log=lambda m: console.print(escape(m)))
     bench = build_bench(cfg)
     try:
         plan = RunPlan(passes=point.passes, dark_frames=point.dark_frames, exposure_s=point.exposure_s,
