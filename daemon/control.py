@@ -148,6 +148,52 @@ REQUEST_NAMES = (
 )
 
 
+CONTROL_HANDSHAKE_IVL_MS = 2000  # a peer that has not finished the ZeroMQ handshake by then is dropped
+
+
+def control_socket(context):
+    """The service's control socket: a ROUTER, not a REP.
+
+    Why REP lost replies after junk connections: libzmq treats a peer whose first byte is not
+    0xFF as an unversioned (ZMTP 1.0) peer, so random bytes and HTTP text are parsed into frames
+    and can arrive as messages (measured: 297 junk messages in 100 batches of ten random-byte
+    connections reached a plain ROUTER). A REP socket reads the return route of each request from
+    the message itself and drops a request whose route has no empty delimiter by rolling back the
+    route it had started to copy. When the junk peer has already gone, that rollback leaves the
+    underlying router "in the middle of an outgoing message", so the next legitimate request's
+    route is taken as a continuation and discarded: its request is carried out and its reply is
+    silently dropped (old code: 68 of 100 batches answered within 1 s). This reading of libzmq's
+    REP/ROUTER is consistent with the measurements (losses only with junk that forms malformed
+    routes, none with CURVE, which has no ZMTP 1.0 fallback); it is not proven line by line.
+
+    With a ROUTER the service itself receives [peer identity, delimiter, body] and sends
+    [peer identity, delimiter, reply] as one whole message, so a reply can only go to the peer
+    whose request it answers and nothing carries over from one request to the next.
+    ROUTER_MANDATORY makes a reply to a peer that has left an error (EHOSTUNREACH, ignored)
+    instead of a silent drop; HANDSHAKE_IVL drops peers that never finish the handshake; receive
+    and send never block the control thread."""
+    import zmq
+
+    sock = context.socket(zmq.ROUTER)
+    sock.setsockopt(zmq.LINGER, 0)
+    sock.setsockopt(zmq.MAXMSGSIZE, HARD_MAX_REQUEST_BYTES)
+    sock.setsockopt(zmq.SNDHWM, 100)
+    sock.setsockopt(zmq.RCVHWM, 100)
+    sock.setsockopt(zmq.ROUTER_MANDATORY, 1)
+    sock.setsockopt(zmq.HANDSHAKE_IVL, CONTROL_HANDSHAKE_IVL_MS)
+    sock.setsockopt(zmq.SNDTIMEO, 0)
+    return sock
+
+
+def split_envelope(parts: list) -> tuple[list, list]:
+    """ROUTER message -> (envelope to send back, body parts). The envelope is the peer identity and,
+    from REQ peers, the frames up to and including the empty delimiter."""
+    for i in range(1, len(parts)):
+        if len(parts[i]) == 0:
+            return parts[: i + 1], parts[i + 1:]
+    return parts[:1], parts[1:]
+
+
 class BadRequest(ValueError):
     """The bytes received are not a valid request; the message says what was wrong."""
 

@@ -16,9 +16,10 @@ Threads
 
 Sockets
 -------
-- control: REP, bound to ``[service] control_address`` (loopback unless CURVE keys
-  are configured, see ``security``), ``MAXMSGSIZE`` = ``HARD_MAX_REQUEST_BYTES``;
-  requests above ``max_request_bytes`` (but below the hard limit) get an error reply.
+- control: ROUTER (``control.control_socket``; clients use REQ), bound to ``[service] control_address``
+  (loopback unless CURVE keys are configured, see ``security``), ``MAXMSGSIZE`` = ``HARD_MAX_REQUEST_BYTES``;
+  requests above ``max_request_bytes`` (but below the hard limit) get an error reply. Every reply is
+  addressed to the peer identity its request came with; junk connections cannot shift it.
 - stream: PUB (``ServicePublisher``), ``[service] publish_address``, send high-water
   mark ``[stream] preview_hwm``: a slow subscriber loses messages, acquisition never waits.
 - reconstruction: PUSH/PULL on loopback to the worker (``recon_link``).
@@ -157,11 +158,7 @@ class Service:
             self.ctx = zmq.Context()
             if self.keys is not None:
                 self.auth = start_authenticator(self.ctx, self.keys)
-            self.sock = self.ctx.socket(zmq.REP)
-            self.sock.setsockopt(zmq.LINGER, 0)
-            self.sock.setsockopt(zmq.MAXMSGSIZE, C.HARD_MAX_REQUEST_BYTES)
-            self.sock.setsockopt(zmq.SNDHWM, 100)
-            self.sock.setsockopt(zmq.RCVHWM, 100)
+            self.sock = C.control_socket(self.ctx)
             if self.keys is not None:
                 apply_server_keys(self.sock, self.keys)
             self.sock.bind(self.control_address_requested)
@@ -230,9 +227,10 @@ class Service:
     # --- requests ----------------------------------------------------------------------
     def _answer_one(self) -> None:
         try:
-            parts = self.sock.recv_multipart(copy=True)
+            parts = self.sock.recv_multipart(flags=zmq.NOBLOCK, copy=True)
         except zmq.ZMQError:
             return
+        envelope, parts = C.split_envelope(parts)  # ROUTER: the reply goes back to exactly this peer
         raw = parts[0] if len(parts) == 1 else b""
         try:
             if len(parts) != 1:
@@ -248,9 +246,10 @@ class Service:
             self.log(f"internal error answering a request: {traceback.format_exc()}")
             reply = C.error_reply(f"internal error ({type(exc).__name__}: {exc}); the service keeps running", self.state)
         try:
-            self.sock.send(reply)
-        except zmq.ZMQError as exc:
-            self.log(f"could not send a reply: {exc}")
+            self.sock.send_multipart([*envelope, reply], flags=zmq.NOBLOCK)
+        except zmq.ZMQError as exc:  # EHOSTUNREACH: the peer left before its reply (router mandatory)
+            if exc.errno not in (zmq.EHOSTUNREACH, zmq.EAGAIN):
+                self.log(f"could not send a reply: {exc}")
 
     def handle(self, req) -> dict:
         """Dispatch one validated request; returns the result dict or raises Refused."""
