@@ -162,6 +162,7 @@ def build_bench(cfg: BenchConfig) -> Bench:
             response = Response(cfg.response.gain_dn_per_e, cfg.response.offset_dn, cfg.response.quantum_efficiency)
         bench = Bench(cfg, masks, camera, modulator, safety, response, context, optics, truth, firmware,
                       profile=profile, flat_field=flat)
+        check_exposure(bench, cfg.camera.exposure_s)
         check_watchdog(bench, cfg.camera.exposure_s)
         if cfg.reconstruction.enabled:
             from .remote_workers import link_options
@@ -172,6 +173,19 @@ def build_bench(cfg: BenchConfig) -> Bench:
             fw.stop()
         raise
     return bench
+
+
+def check_exposure(bench: Bench, exposure_s: float, where: str = "camera.exposure_s") -> None:
+    """ConfigError when the camera cannot take ``exposure_s`` (its own limits, ``Camera.exposure_range_s``).
+
+    Checked before anything is written or shown: a run with such an exposure would fault on its
+    first frame, and a resume (same stored settings) would fault the same way."""
+    lo, hi = bench.camera.exposure_range_s
+    e = float(exposure_s)
+    if not lo <= e <= hi:
+        raise ConfigError(bench.config.source_path, [(where,
+                          f"exposure {e:g} s is outside what the camera takes ({lo:g} to {hi:g} s, as its driver "
+                          f"'{bench.config.camera.driver}' reports); choose an exposure in that range")])
 
 
 def check_watchdog(bench: Bench, exposure_s: float) -> None:

@@ -27,7 +27,12 @@ HARD_MAX_REQUEST_BYTES = 1 << 20
 
 
 class _Request(BaseModel):
+    """Strict: no type coercion, unknown fields refused, and JSON ``null`` refused for every field: a
+    field that may be left out has a plain type with the default None (never validated), so an
+    explicit null is a wrong type like any other (``parse_request`` names it first, in plain words)."""
+
     model_config = ConfigDict(extra="forbid", strict=True)
+
 
 
 class StatusRequest(_Request):
@@ -54,13 +59,13 @@ class StartRequest(_Request):
     """Start a run; omitted fields come from the config ([run], [camera])."""
 
     request: Literal["start"]
-    passes: int | None = Field(None, ge=1, le=1_000_000)
-    exposure_s: float | None = Field(None, gt=0, le=3600)
-    dark_frames: int | None = Field(None, ge=0, le=10_000)
-    interval_s: float | None = Field(None, gt=0, le=7 * 86400)
-    name: str | None = Field(None, min_length=1, max_length=100, pattern=r"^[A-Za-z0-9_.\-]+$")
-    output_dir: str | None = Field(None, min_length=1, max_length=4096)
-    output_path: str | None = Field(None, min_length=1, max_length=4096, description="the run file (.h5); must not exist")
+    passes: int = Field(None, ge=1, le=1_000_000)
+    exposure_s: float = Field(None, gt=0, le=3600)
+    dark_frames: int = Field(None, ge=0, le=10_000)
+    interval_s: float = Field(None, gt=0, le=7 * 86400)
+    name: str = Field(None, min_length=1, max_length=100, pattern=r"^[A-Za-z0-9_.\-]+$")
+    output_dir: str = Field(None, min_length=1, max_length=4096)
+    output_path: str = Field(None, min_length=1, max_length=4096, description="the run file (.h5); must not exist")
 
     @field_validator("exposure_s", "interval_s")
     @classmethod
@@ -111,8 +116,8 @@ class AlignStartRequest(_Request):
     """Free-running frames with one mask (``mask``) or all masks in turn (``mask`` omitted)."""
 
     request: Literal["align_start"]
-    mask: int | None = Field(None, ge=0, description="mask index to hold; omitted: cycle through all masks")
-    exposure_s: float | None = Field(None, gt=0, le=3600)
+    mask: int = Field(None, ge=0, description="mask index to hold; omitted: cycle through all masks")
+    exposure_s: float = Field(None, gt=0, le=3600)
     iterations: int = Field(30, ge=1, le=1000, description="follow-mode iterations per frame set")
 
 
@@ -236,6 +241,10 @@ def parse_request(raw: bytes, max_bytes: int = DEFAULT_MAX_REQUEST_BYTES):
     if name not in REQUEST_NAMES:
         shown = name[:40] + ("..." if len(name) > 40 else "")
         raise BadRequest(f"unknown request {shown!r}; requests are: {', '.join(REQUEST_NAMES)}")
+    nulls = [k for k, v in data.items() if v is None]
+    if nulls:  # the models refuse them too (wrong type); this says it in plain words
+        raise BadRequest(f"bad {name!r} request: " + "; ".join(
+            f"{k}: null is not allowed (leave the field out to use its default)" for k in nulls))
     try:
         return _ADAPTER.validate_json(text)
     except ValidationError as exc:

@@ -212,8 +212,13 @@ def _run(cfg, req, bench, plan: RunPlan, ack, console: Console, *, append: bool 
                                   append=append, resume_note=resume_note, extra_events=extra_events)
         if summary.state.value != "finished":
             console.print(f"[bold]Run {summary.state.value}[/]: {escape(summary.message)}")
-            console.print(f"Shutter closed; run file flushed and closed with {summary.sets_in_file} complete frame "
-                          f"sets. Continue with: [bold]maskrun resume {out} --acknowledge-safety[/]")
+            if summary.resumable:
+                console.print(f"Shutter closed; run file flushed and closed with {summary.sets_in_file} complete "
+                              f"frame sets. Continue with: [bold]maskrun resume {out} --acknowledge-safety[/]")
+            else:
+                console.print(f"Shutter closed; run file {out} kept ({summary.sets_in_file} complete frame sets). "
+                              "No resume can fix this (it would use the same settings): start a new run with "
+                              "settings the device accepts.")
     finally:
         for sig, h in old_handlers.items():
             signal.signal(sig, h)

@@ -260,6 +260,8 @@ def resume_point(path: str | Path) -> ResumePoint:
         end = rf.last_end()
         if end is not None and end["message"].startswith("run finished"):
             raise ResumeError(f"{path}: the run finished ({end['message']}); nothing to resume")
+        if end is not None and "no resume can fix this" in end["message"]:
+            raise ResumeError(f"{path}: {end['message'].removeprefix('run ')}")
         if end is None:
             pid = _writer_alive(events)
             if pid is not None:

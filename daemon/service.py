@@ -427,10 +427,12 @@ class Service:
         return {"exposure_s": self.exposure_s}
 
     def _check_watchdog(self, exposure_s: float) -> None:
-        """Refuse an exposure the safety box's watchdog would cut short (see bench.check_watchdog)."""
-        from .bench import check_watchdog
+        """Refuse an exposure the camera cannot take (its own limits, bench.check_exposure) or that the
+        safety box's watchdog would cut short (bench.check_watchdog)."""
+        from .bench import check_exposure, check_watchdog
 
         try:
+            check_exposure(self.bench, exposure_s, "exposure_s")
             check_watchdog(self.bench, exposure_s)
         except ConfigError as exc:
             raise Refused(str(exc)) from None
