@@ -193,6 +193,9 @@ class RecoveryConfig(_Table):
 class StreamConfig(_Table):
     publish_address: str = Field("tcp://127.0.0.1:0", description="ZeroMQ PUB address; port 0 picks a free port")
     preview_hwm: int = Field(10, ge=1, description="queued messages per subscriber before previews are dropped")
+    curve: Literal["auto", "on", "off"] = Field(
+        "auto", description="CURVE on the stream: 'auto' = when bound off loopback (needs the [service] keys), "
+        "'on' = always, 'off' = never (unencrypted; identities and paths are withheld from its messages)")
 
 
 class ServiceConfig(_Table):

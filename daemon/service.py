@@ -54,6 +54,7 @@ from .security import (
     ServerKeys,
     apply_server_keys,
     check_control_binding,
+    check_stream_binding,
     connect_host_for,
     is_loopback_address,
     load_server_keys,
@@ -65,7 +66,7 @@ from .stream import Publisher
 RUN_STATES = ("preparing", "darks", "acquiring", "paused", "finishing")
 PLANCK_J_S = 6.62607015e-34  # exact (SI 2019); CODATA 2018, Tiesinga et al., Rev. Mod. Phys. 93, 025010 (2021)
 LIGHT_SPEED_M_S = 299792458.0  # exact (SI definition)
-STREAM_SUBSCRIPTION_MAX_BYTES = 4096  # a PUB socket only receives subscriptions; they are short
+
 
 
 class Refused(Exception):
@@ -75,10 +76,9 @@ class Refused(Exception):
 class ServicePublisher(Publisher):
     """The stream publisher, recording recent alerts and counting messages for status."""
 
-    def __init__(self, context: zmq.Context, address: str, *, hwm: int, alerts: int = 20):
-        super().__init__(context, address, hwm=hwm)
-        # the PUB socket receives only subscription messages: keep them small
-        self._sock.setsockopt(zmq.MAXMSGSIZE, STREAM_SUBSCRIPTION_MAX_BYTES)
+    def __init__(self, context: zmq.Context, address: str, *, hwm: int, alerts: int = 20, keys=None,
+                 curve: str = "auto"):
+        super().__init__(context, address, hwm=hwm, keys=keys, curve=curve)  # XPUB, bounded subscriptions
         self.recent_alerts: collections.deque = collections.deque(maxlen=alerts)
         self.sent: collections.Counter = collections.Counter()
 
@@ -119,6 +119,7 @@ class Service:
             self.keys = load_server_keys(base / sc.server_secret_key, base / sc.authorized_clients_dir)
         # refuse an exposed control socket before anything is opened
         check_control_binding(self.control_address_requested, self.keys)
+        check_stream_binding(self.publish_address_requested, self.keys, cfg.stream.curve)
         self.state = "starting"
         self.exposure_s = cfg.camera.exposure_s
         self.ack: Acknowledgement | None = None
@@ -163,7 +164,8 @@ class Service:
                 apply_server_keys(self.sock, self.keys)
             self.sock.bind(self.control_address_requested)
             self.control_address = self.sock.getsockopt_string(zmq.LAST_ENDPOINT)
-            self.pub = ServicePublisher(self.ctx, self.publish_address_requested, hwm=cfg.stream.preview_hwm)
+            self.pub = ServicePublisher(self.ctx, self.publish_address_requested, hwm=cfg.stream.preview_hwm,
+                                        keys=self.keys, curve=cfg.stream.curve)
             self.publish_address = connect_host_for(self.pub.address, self.control_address)
             from .session import make_recon_link
 
@@ -610,6 +612,7 @@ class Service:
             "control_address": self.control_address,
             "publish_address": self.publish_address,
             "curve": self.keys is not None,
+            "stream_curve": bool(self.pub is not None and self.pub.authenticated),
             "safety": {"acknowledged": ack is not None, "acknowledgement": ack, "interlock_closed": interlock,
                        "shutter_open": shutter, "source": safety_source, "laser_class": self.cfg.laser.laser_class,
                        "wavelength_m": self.cfg.laser.wavelength_m},
