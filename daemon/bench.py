@@ -73,6 +73,13 @@ class Bench:
                                    f"{tuple(self.camera.frame_shape)} on the camera"], self.config.response.profile)
         self.modulator.load(self.masks)
 
+    def firmware_info(self) -> list[dict]:
+        """The simulated devices' firmware: name, port and (own process) pid."""
+        out = []
+        for fw in self.firmware:
+            out += fw.info() if hasattr(fw, "info") else [{"name": fw.name, "port": fw.port, "pid": None}]
+        return out
+
     def close(self) -> None:
         """Shutter closed first, whatever else fails; then devices; then simulators."""
         with contextlib.suppress(Exception):
@@ -137,12 +144,19 @@ def build_bench(cfg: BenchConfig) -> Bench:
         if cfg.simulation is not None:
             optics, truth = _simulated_optics(cfg, masks, (rows, cols))
             context.optics = optics
-            from maskrun.simulators.firmware import start_firmware
+            if cfg.simulation.firmware_processes and cfg.simulation.firmware:
+                from .firmware_procs import start_firmware_processes
 
-            for name, fw_cfg in cfg.simulation.firmware.items():
-                handle = start_firmware(name, optics, faults=fw_cfg.faults, settle_s=fw_cfg.settle_s, name=name)
-                firmware.append(handle)
-                context.ports[name] = handle.port
+                group = start_firmware_processes(cfg.simulation.firmware, optics, masks.shape[0])
+                firmware.append(group)
+                context.ports.update(group.ports)
+            else:
+                from maskrun.simulators.firmware import start_firmware
+
+                for name, fw_cfg in cfg.simulation.firmware.items():
+                    handle = start_firmware(name, optics, faults=fw_cfg.faults, settle_s=fw_cfg.settle_s, name=name)
+                    firmware.append(handle)
+                    context.ports[name] = handle.port
         modulator = _driver("modulator", "modulator", cfg.modulator, context, src)
         safety = _driver("safety", "safety", cfg.safety, context, src)
     except BaseException:

@@ -235,6 +235,9 @@ class SimulationConfig(_Table):
     photon_rate_per_s: float = Field(gt=0, description="incident photons per second on the detector, shutter open")
     seed: int = 0
     firmware: dict[Literal["modulator", "safety"], FirmwareConfig] = Field(default_factory=dict)
+    firmware_processes: bool = Field(
+        False, description="run each simulated device's firmware as its own process (so killing or freezing "
+        "maskrun is seen by the box: link loss, watchdog); false: threads inside maskrun")
     modulator_offset_px: tuple[float, float] = Field(
         (0.0, 0.0), description="(rows, cols) grid pixels by which the simulated modulator image is displaced "
         "on the field: a misregistered bench (the reconstruction still assumes the designed masks)")

@@ -210,7 +210,7 @@ class Service:
             self.open()
         if ready is not None:
             ready({"control_address": self.control_address, "publish_address": self.publish_address,
-                   "pid": os.getpid(), "curve": self.keys is not None})
+                   "pid": os.getpid(), "curve": self.keys is not None, "firmware": self.bench.firmware_info()})
         interval = self.cfg.service.status_interval_s
         next_status = 0.0
         try:

@@ -29,6 +29,9 @@ Safety box (interlock chain and beam shutter):
     SHUTTER CLOSE   -> OK SHUTTER CLOSED   (always accepted)
     WATCHDOG <s>    -> OK WATCHDOG <s>     (0 = off; ERR if negative or not a number)
     WATCHDOG?       -> WATCHDOG <s> TRIPS <n>
+    TRIPS?          -> TRIPS INTERLOCK <a> WATCHDOG <b> LINK <c> LAST <reason> <epoch s>
+                       (times the box closed the shutter by itself, and the last one: reason
+                       interlock | watchdog | link | none, wall-clock time of that close)
 
 The safety box is fail-safe: if the interlock opens while the shutter is
 open it closes the shutter by itself at once (hardware interlock), and when
@@ -36,6 +39,13 @@ its host link is lost (unplug, stop) it closes the shutter too. With the
 watchdog armed, a shutter left open while the host sends no command for
 ``s`` seconds (a hung or frozen host program) is closed by the box itself;
 every command counts as a sign of life.
+
+Link loss: in-process (the default) the simulator keeps its own handle on the terminal
+side, so only an unplug is a link loss. Run as its own process (``firmware_process``,
+``detect_hangup=True``) it lets go of the terminal side once the host has sent its first
+command; when the host's last handle closes (the host program exited or was killed) the
+pseudo-terminal hangs up and the box closes the shutter at once, as a box does when its
+host link drops. It serves the host again when a program reopens the port.
 
 Faults (``FirmwareFault`` or plain dicts), counted over command lines received
 since the start (1 = first command):
@@ -107,8 +117,9 @@ class _Protocol:
     def tick(self, now: float) -> None:
         pass
 
-    def link_lost(self) -> None:
-        pass
+    def link_lost(self) -> bool:
+        """The host link dropped; True when the device made itself safe because of it (shutter closed)."""
+        return False
 
     def close(self) -> None:
         pass
@@ -176,6 +187,8 @@ class _SafetyProtocol(_Protocol):
         self.trips = 0
         self.watchdog_s = 0.0
         self.watchdog_trips = 0
+        self.link_trips = 0
+        self.last_trip = ("none", 0.0)
         self.last_command_s = time.monotonic()
         self._unsubscribe = optics.subscribe(self._on_optics_change)
 
@@ -192,6 +205,7 @@ class _SafetyProtocol(_Protocol):
         if self.watchdog_s > 0 and self.optics.shutter_open and now - self.last_command_s >= self.watchdog_s:
             self.optics.shutter_open = False
             self.watchdog_trips += 1
+            self.last_trip = ("watchdog", time.time())
             log.warning("simulated safety box: no command for %.3g s with the shutter open; watchdog closed it",
                         now - self.last_command_s)
 
@@ -200,6 +214,7 @@ class _SafetyProtocol(_Protocol):
         if name == "interlock_closed" and not value and self.optics.shutter_open:
             self.optics.shutter_open = False
             self.trips += 1
+            self.last_trip = ("interlock", time.time())
 
     def command(self, words):
         line = " ".join(words)
@@ -224,6 +239,10 @@ class _SafetyProtocol(_Protocol):
             return "OK SHUTTER CLOSED"
         if line == "WATCHDOG?":
             return f"WATCHDOG {self.watchdog_s:g} TRIPS {self.watchdog_trips}"
+        if line == "TRIPS?":
+            reason, t = self.last_trip
+            return (f"TRIPS INTERLOCK {self.trips} WATCHDOG {self.watchdog_trips} LINK {self.link_trips} "
+                    f"LAST {reason} {t:.3f}")
         if words[0] == "WATCHDOG" and len(words) == 2:
             try:
                 seconds = float(words[1])
@@ -236,7 +255,12 @@ class _SafetyProtocol(_Protocol):
         return f"ERR unknown command {line}"
 
     def link_lost(self):
+        was_open = self.optics.shutter_open
+        if was_open:
+            self.link_trips += 1
+            self.last_trip = ("link", time.time())
         self.optics.shutter_open = False
+        return was_open
 
     def close(self):
         self.optics.shutter_open = False
@@ -259,7 +283,8 @@ class FirmwareHandle:
     on a new pty behind the same path. stop(): end the thread and remove the folder.
     """
 
-    def __init__(self, kind: str, optics, faults: Iterable = (), settle_s: float = 0.0, name: str | None = None):
+    def __init__(self, kind: str, optics, faults: Iterable = (), settle_s: float = 0.0, name: str | None = None,
+                 detect_hangup: bool = False, port_dir: str | None = None):
         if kind not in _PROTOCOLS:
             raise ValueError(f"unknown firmware kind {kind!r}; choose one of {', '.join(FIRMWARE_KINDS)}")
         self.kind = kind
@@ -270,7 +295,10 @@ class FirmwareHandle:
             for f in faults
         ]
         self._protocol = _PROTOCOLS[kind](optics, settle_s)
-        self._dir = tempfile.mkdtemp(prefix=f"maskrun-{self.name}-")
+        self._dir = tempfile.mkdtemp(prefix=f"maskrun-{self.name}-", dir=port_dir)
+        self._detect_hangup = detect_hangup
+        self._host_seen = False  # detect_hangup: the host sent a command, so our own slave handle is let go
+        self.link_down = False  # detect_hangup: the host's last handle on the terminal closed
         self.port = os.path.join(self._dir, self.name)
         self._lock = threading.Lock()
         self._commands_seen = 0
@@ -292,6 +320,11 @@ class FirmwareHandle:
     def commands_seen(self) -> int:
         with self._lock:
             return self._commands_seen
+
+    @property
+    def host_link_up(self) -> bool:
+        """detect_hangup: a host has sent a command and still has the port open."""
+        return self._host_seen and not self.link_down
 
     @property
     def plugged(self) -> bool:
@@ -345,6 +378,7 @@ class FirmwareHandle:
         fcntl.fcntl(master, fcntl.F_SETFD, fcntl.FD_CLOEXEC)
         self._master, self._slave = master, slave
         self._slave_path = os.ttyname(slave)
+        self._host_seen = self.link_down = False
         self._buffer = b""
         tmp = self.port + ".new"
         try:
@@ -399,7 +433,9 @@ class FirmwareHandle:
         now = time.monotonic()
         deadlines = [d for d in (self._protocol.next_deadline(), self._replug_at) if d is not None]
         timeout = max(0.0, min(deadlines) - now) if deadlines else 0.5
-        fds = [self._wake_r] + ([self._master] if self._master is not None else [])
+        if self.link_down:
+            timeout = min(timeout, 0.01)  # a hung-up master is always readable (EIO): look every 10 ms instead
+        fds = [self._wake_r] + ([self._master] if self._master is not None and not self.link_down else [])
         try:
             readable, _, _ = select.select(fds, [], [], timeout)
         except (OSError, ValueError):
@@ -418,7 +454,7 @@ class FirmwareHandle:
             if self._master is None:
                 self._plug()
         self._protocol.tick(now)
-        if self._master is not None and self._master in readable:
+        if self._master is not None and (self._master in readable or self.link_down):
             self._read_commands()
 
     def _serve_requests(self) -> None:
@@ -437,11 +473,27 @@ class FirmwareHandle:
         try:
             data = os.read(self._master, 4096)
         except BlockingIOError:
+            if self.link_down:  # a program has the terminal open again: the link is back
+                self.link_down = False
+                log.info("firmware %s: host link back", self.name)
             return
         except OSError as exc:
             if exc.errno == errno.EIO:
+                if self._detect_hangup and self._host_seen and not self.link_down:
+                    self.link_down = True  # the host's last handle closed: the link dropped
+                    if self._protocol.link_lost():
+                        log.warning("firmware %s: host link lost with the shutter open; shutter closed", self.name)
+                    else:
+                        log.info("firmware %s: host link closed", self.name)
                 return
             raise
+        if self.link_down:
+            self.link_down = False
+        if self._detect_hangup and not self._host_seen and data:
+            self._host_seen = True
+            if self._slave is not None:  # from now on a hang-up of the host side is seen as EIO
+                os.close(self._slave)
+                self._slave = None
         self._buffer += data
         while b"\n" in self._buffer and self._master is not None:
             raw, self._buffer = self._buffer.split(b"\n", 1)
@@ -479,7 +531,8 @@ class FirmwareHandle:
             pass  # output buffer full or link gone: the reply is lost, as on a real line
 
 
-def start_firmware(kind: str, optics, *, faults=(), settle_s: float = 0.0, name: str | None = None) -> FirmwareHandle:
+def start_firmware(kind: str, optics, *, faults=(), settle_s: float = 0.0, name: str | None = None,
+                   detect_hangup: bool = False, port_dir: str | None = None) -> FirmwareHandle:
     """Start a firmware simulator of ``kind`` ('modulator' or 'safety') bound to ``optics``.
 
     faults: FirmwareFault models or dicts {kind, at_command, count, duration_s}.
@@ -487,4 +540,5 @@ def start_firmware(kind: str, optics, *, faults=(), settle_s: float = 0.0, name:
     shutter travel time of the safety box.
     name: name of the symlink (default: the kind). Returns the running FirmwareHandle.
     """
-    return FirmwareHandle(kind, optics, faults=faults, settle_s=settle_s, name=name)
+    return FirmwareHandle(kind, optics, faults=faults, settle_s=settle_s, name=name, detect_hangup=detect_hangup,
+                          port_dir=port_dir)
