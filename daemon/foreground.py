@@ -111,6 +111,10 @@ def _hms(seconds: float) -> str:
 def run_foreground(cfg: BenchConfig, req: RunRequest, console: Console) -> RunSummary:
     bench = build_bench(cfg)  # ConfigError here: nothing created yet
     try:
+        own = [f for f in bench.firmware_info() if f.get("pid")]
+        if own:
+            console.print("Simulated devices in their own processes: " + ", ".join(
+                f"{f['name']} pid {f['pid']} on {escape(f['port'])}" for f in own))
         out = output_path_for(cfg, req)
         check_output_folder(out)
         plan = plan_for(cfg, req, out)
