@@ -140,3 +140,31 @@ def test_sigstop_of_maskrun_makes_the_box_close_the_shutter_within_the_watchdog_
     finally:
         d.proc.send_signal(signal.SIGKILL)
         d.proc.send_signal(signal.SIGCONT)
+
+
+@pytest.mark.parametrize("running_daemon", [0.0], indirect=True)
+def test_the_interlock_opened_mid_run_is_seen_by_the_box_process_which_closes_the_shutter(running_daemon):
+    """maskrun's 'simulate open_interlock' moves the doors; the box, in its own process, closes its shutter
+    (the hardware interlock) and the run pauses; afterwards the box's own count says so."""
+    d, fw = running_daemon
+    with ServiceClient(d.control, timeout_s=10) as c:
+        deadline = time.monotonic() + 10
+        while not _shutter_open_in_shared_state(fw):
+            assert time.monotonic() < deadline, "the shutter never opened"
+            time.sleep(0.001)
+        c.simulate("open_interlock")
+        t_open = time.monotonic()
+        while _shutter_open_in_shared_state(fw):
+            assert time.monotonic() - t_open < 0.5, "the box did not close the shutter"
+            time.sleep(0.0005)
+        closed_after_s = time.monotonic() - t_open
+        c.wait_state("paused", timeout_s=20)
+        c.stop("done")
+        c.wait_idle(timeout_s=30)
+    d.proc.send_signal(signal.SIGKILL)  # so the test can ask the box itself (no driver on the port)
+    d.proc.wait(30)
+    trips = _trips(_ask(fw["safety"]["port"], "TRIPS?"))
+    print(f"\nbox closed the shutter {closed_after_s * 1000:.1f} ms after the interlock opened; {trips}")
+    assert closed_after_s < 0.05  # the box's own reaction (its watcher polls every ms), or maskrun's, both fast
+    assert _ask(fw["safety"]["port"], "SHUTTER?") == "SHUTTER CLOSED"
+    assert _ask(fw["safety"]["port"], "INTERLOCK?") == "INTERLOCK OPEN"
