@@ -73,6 +73,13 @@ class Bench:
                                    f"{tuple(self.camera.frame_shape)} on the camera"], self.config.response.profile)
         self.modulator.load(self.masks)
 
+    def firmware_info(self) -> list[dict]:
+        """The simulated devices' firmware: name, port and (own process) pid."""
+        out = []
+        for fw in self.firmware:
+            out += fw.info() if hasattr(fw, "info") else [{"name": fw.name, "port": fw.port, "pid": None}]
+        return out
+
     def close(self) -> None:
         """Shutter closed first, whatever else fails; then devices; then simulators."""
         with contextlib.suppress(Exception):
@@ -137,12 +144,19 @@ def build_bench(cfg: BenchConfig) -> Bench:
         if cfg.simulation is not None:
             optics, truth = _simulated_optics(cfg, masks, (rows, cols))
             context.optics = optics
-            from maskrun.simulators.firmware import start_firmware
+            if cfg.simulation.firmware_processes and cfg.simulation.firmware:
+                from .firmware_procs import start_firmware_processes
 
-            for name, fw_cfg in cfg.simulation.firmware.items():
-                handle = start_firmware(name, optics, faults=fw_cfg.faults, settle_s=fw_cfg.settle_s, name=name)
-                firmware.append(handle)
-                context.ports[name] = handle.port
+                group = start_firmware_processes(cfg.simulation.firmware, optics, masks.shape[0])
+                firmware.append(group)
+                context.ports.update(group.ports)
+            else:
+                from maskrun.simulators.firmware import start_firmware
+
+                for name, fw_cfg in cfg.simulation.firmware.items():
+                    handle = start_firmware(name, optics, faults=fw_cfg.faults, settle_s=fw_cfg.settle_s, name=name)
+                    firmware.append(handle)
+                    context.ports[name] = handle.port
         modulator = _driver("modulator", "modulator", cfg.modulator, context, src)
         try:  # a mask family the device cannot impose is a config error, before any notice or device
             modulator.check_masks(cfg.masks.family, masks)
@@ -167,6 +181,7 @@ def build_bench(cfg: BenchConfig) -> Bench:
             response = Response(cfg.response.gain_dn_per_e, cfg.response.offset_dn, cfg.response.quantum_efficiency)
         bench = Bench(cfg, masks, camera, modulator, safety, response, context, optics, truth, firmware,
                       profile=profile, flat_field=flat)
+        check_exposure(bench, cfg.camera.exposure_s)
         check_watchdog(bench, cfg.camera.exposure_s)
         if cfg.reconstruction.enabled:
             from .remote_workers import link_options
@@ -177,6 +192,19 @@ def build_bench(cfg: BenchConfig) -> Bench:
             fw.stop()
         raise
     return bench
+
+
+def check_exposure(bench: Bench, exposure_s: float, where: str = "camera.exposure_s") -> None:
+    """ConfigError when the camera cannot take ``exposure_s`` (its own limits, ``Camera.exposure_range_s``).
+
+    Checked before anything is written or shown: a run with such an exposure would fault on its
+    first frame, and a resume (same stored settings) would fault the same way."""
+    lo, hi = bench.camera.exposure_range_s
+    e = float(exposure_s)
+    if not lo <= e <= hi:
+        raise ConfigError(bench.config.source_path, [(where,
+                          f"exposure {e:g} s is outside what the camera takes ({lo:g} to {hi:g} s, as its driver "
+                          f"'{bench.config.camera.driver}' reports); choose an exposure in that range")])
 
 
 def check_watchdog(bench: Bench, exposure_s: float) -> None:

@@ -49,8 +49,24 @@ def run_outcome(rf) -> str:
                 return f"running (writer pid {pid})"
         except (ProcessLookupError, OSError):
             pass
-        return f"no end recorded and the writer (pid {pid}) is gone: killed or lost power; continue with 'maskrun resume'"
+        return f"no end recorded and the writer (pid {pid}) is gone: killed or lost power; {resume_advice(rf)}"
     return "no end recorded (running elsewhere, or the writer died)"
+
+
+def resume_advice(rf) -> str:
+    """What 'maskrun resume' will do with this file, in the words it uses (the same check: recovery.resume_point)."""
+    from .recovery import ResumeError, resume_point
+
+    try:
+        point = resume_point(rf.path)
+    except ResumeError as exc:
+        return f"'maskrun resume' refuses it: {str(exc).split(': ', 1)[-1]}"
+    except Exception as exc:  # an unreadable stored config: say so rather than advise
+        return f"'maskrun resume' cannot read it ({type(exc).__name__}: {exc})"
+    if point.finish_only:
+        return (f"all {point.passes} frame sets are in the file; finish it with 'maskrun resume {rf.path}' "
+                "(computes the missing estimates and writes the end record; no light)")
+    return f"continue with 'maskrun resume {rf.path}' from pass {point.first_pass}"
 
 
 def summary_table(rf, path: Path) -> Table:

@@ -24,6 +24,9 @@ def _add_run_options(p) -> None:
 def register(sub) -> None:
     p = sub.add_parser("demo", help="run the whole job on the embedded simulated bench (configs/demo.toml)")
     _add_run_options(p)
+    p.add_argument("--firmware-processes", action="store_true",
+                   help="run the simulated safety box and modulator firmware as their own processes (killing or "
+                   "freezing maskrun is then seen by the box: it closes the shutter)")
     p.set_defaults(func=cmd_demo)
     p = sub.add_parser("run", help="run a bench config in the foreground (notice, darks, passes, reconstruction)")
     p.add_argument("config", help="bench config (TOML)")
@@ -57,7 +60,10 @@ def _execute(cfg, args) -> int:
 def cmd_demo(args) -> int:
     from .config import load_demo_config
 
-    return _execute(load_demo_config(), args)
+    cfg = load_demo_config()
+    if args.firmware_processes:
+        cfg.simulation.firmware_processes = True
+    return _execute(cfg, args)
 
 
 def cmd_run(args) -> int:

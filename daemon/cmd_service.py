@@ -293,6 +293,13 @@ def cmd_align(args) -> int:
 def cmd_watch(args) -> int:
     from .watch import run_watch
 
-    stream = args.stream or _call(args, lambda c: c.status())["publish_address"]
-    run_watch(stream, Console(), duration_s=args.duration_s, refresh_hz=args.refresh_hz)
+    keys_dir = args.keys or os.environ.get("MASKRUN_KEYS")
+    st = _call(args, lambda c: c.status()) if not args.stream or keys_dir else {}
+    stream = args.stream or st["publish_address"]
+    keys = None
+    if st.get("stream_curve") and keys_dir:
+        from .security import load_client_keys
+
+        keys = load_client_keys(keys_dir)  # the stream is a CURVE server with the daemon's keys
+    run_watch(stream, Console(), duration_s=args.duration_s, refresh_hz=args.refresh_hz, keys=keys)
     return 0

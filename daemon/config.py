@@ -217,6 +217,9 @@ class RecoveryConfig(_Table):
 class StreamConfig(_Table):
     publish_address: str = Field("tcp://127.0.0.1:0", description="ZeroMQ PUB address; port 0 picks a free port")
     preview_hwm: int = Field(10, ge=1, description="queued messages per subscriber before previews are dropped")
+    curve: Literal["auto", "on", "off"] = Field(
+        "auto", description="CURVE on the stream: 'auto' = when bound off loopback (needs the [service] keys), "
+        "'on' = always, 'off' = never (unencrypted; identities and paths are withheld from its messages)")
 
 
 class ServiceConfig(_Table):
@@ -256,6 +259,9 @@ class SimulationConfig(_Table):
     photon_rate_per_s: float = Field(gt=0, description="incident photons per second on the detector, shutter open")
     seed: int = 0
     firmware: dict[Literal["modulator", "safety"], FirmwareConfig] = Field(default_factory=dict)
+    firmware_processes: bool = Field(
+        False, description="run each simulated device's firmware as its own process (so killing or freezing "
+        "maskrun is seen by the box: link loss, watchdog); false: threads inside maskrun")
     modulator_offset_px: tuple[float, float] = Field(
         (0.0, 0.0), description="(rows, cols) grid pixels by which the simulated modulator image is displaced "
         "on the field: a misregistered bench (the reconstruction still assumes the designed masks)")

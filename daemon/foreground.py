@@ -108,11 +108,28 @@ def _hms(seconds: float) -> str:
     return f"{seconds // 3600:d} h {seconds % 3600 // 60:02d} min" if seconds >= 3600 else f"{seconds // 60:d} min {seconds % 60:02d} s"
 
 
+def _check_stream(cfg: BenchConfig) -> None:
+    """A foreground run has no keys: its stream must be on loopback unless [stream] curve = 'off' (ConfigError)."""
+    from .config import ConfigError
+    from .security import InsecureBinding, check_stream_binding
+
+    try:
+        check_stream_binding(cfg.stream.publish_address, None, cfg.stream.curve)
+    except InsecureBinding as exc:
+        raise ConfigError(cfg.source_path, [("stream.publish_address", f"{exc} (a foreground run has no keys; "
+                                             "'maskrun serve' uses the [service] keys)")]) from None
+
+
 def run_foreground(cfg: BenchConfig, req: RunRequest, console: Console) -> RunSummary:
     bench = build_bench(cfg)  # ConfigError here: nothing created yet
     try:
+        own = [f for f in bench.firmware_info() if f.get("pid")]
+        if own:
+            console.print("Simulated devices in their own processes: " + ", ".join(
+                f"{f['name']} pid {f['pid']} on {escape(f['port'])}" for f in own))
         out = output_path_for(cfg, req)
         check_output_folder(out)
+        _check_stream(cfg)
         plan = plan_for(cfg, req, out)
         for line in describe_plan(bench, plan):
             console.print(line)
@@ -130,6 +147,13 @@ def resume_foreground(path: str | Path, req: RunRequest, console: Console) -> Ru
     path = Path(path)
     point = resume_point(path)  # ResumeError: finished, still being written, nothing to do
     cfg = parse_config(point.config_text, str(path))
+    if point.finish_only:  # every frame set is in: no bench, no light, no notice (daemon.finish)
+        from .finish import finish_run_file
+
+        console.print(f"Finishing [bold]{escape(str(path))}[/]: all {point.passes} frame sets are in the file; "
+                      f"{escape(point.note())}")
+        return finish_run_file(point, cfg, log=lambda m: console.print(escape(m)))
+    _check_stream(cfg)
     bench = build_bench(cfg)
     try:
         plan = RunPlan(passes=point.passes, dark_frames=point.dark_frames, exposure_s=point.exposure_s,
@@ -170,7 +194,7 @@ def _run(cfg, req, bench, plan: RunPlan, ack, console: Console, *, append: bool 
         for sig in (signal.SIGINT, signal.SIGTERM, signal.SIGHUP):  # SIGHUP: the terminal closed
             old_handlers[sig] = signal.signal(sig, _on_signal)
         old_handlers[signal.SIGUSR1] = signal.signal(signal.SIGUSR1, _on_resume)
-        pub = Publisher(ctx, cfg.stream.publish_address, hwm=cfg.stream.preview_hwm)
+        pub = Publisher(ctx, cfg.stream.publish_address, hwm=cfg.stream.preview_hwm, curve=cfg.stream.curve)
         console.print(f"Run file: [bold]{out}[/]")
         console.print(f"Live stream: {pub.address}")
         with Progress(
@@ -206,8 +230,13 @@ def _run(cfg, req, bench, plan: RunPlan, ack, console: Console, *, append: bool 
                                   append=append, resume_note=resume_note, extra_events=extra_events)
         if summary.state.value != "finished":
             console.print(f"[bold]Run {summary.state.value}[/]: {escape(summary.message)}")
-            console.print(f"Shutter closed; run file flushed and closed with {summary.sets_in_file} complete frame "
-                          f"sets. Continue with: [bold]maskrun resume {out} --acknowledge-safety[/]")
+            if summary.resumable:
+                console.print(f"Shutter closed; run file flushed and closed with {summary.sets_in_file} complete "
+                              f"frame sets. Continue with: [bold]maskrun resume {out} --acknowledge-safety[/]")
+            else:
+                console.print(f"Shutter closed; run file {out} kept ({summary.sets_in_file} complete frame sets). "
+                              "No resume can fix this (it would use the same settings): start a new run with "
+                              "settings the device accepts.")
     finally:
         for sig, h in old_handlers.items():
             signal.signal(sig, h)

@@ -26,7 +26,14 @@ Resume point: ``resume_point(path)`` reads the file (never writing) and says
 which pass comes next (after the last complete frame set), the next set index,
 the exposure last used, the dose already delivered, the time of the last
 record (the gap), and refuses clearly when there is nothing to resume or the
-writer is still alive.
+writer is still alive. A run with every planned frame set but no 'run finished'
+end record (killed after its last frame) is not refused: ``finish_only`` is set
+and ``daemon.finish`` completes it without light.
+
+A reader holding the file (h5py with swmr=True, a viewer left open) makes HDF5's
+file lock refuse a writer; ``needs_repair`` counts that too, so resume copies the
+file into a fresh inode and replaces the path atomically: the reader keeps the
+old inode (the file as it was when the writer died) until it reopens the path.
 """
 
 from __future__ import annotations
@@ -52,16 +59,31 @@ class ResumeError(StoreError):
     """The run file cannot be resumed; the message says why and what to do."""
 
 
+def _locked_by_reader(exc: OSError) -> bool:
+    text = str(exc)
+    return getattr(exc, "errno", None) == 11 or "unable to lock file" in text or "Resource temporarily unavailable" in text
+
+
 def needs_repair(path: str | Path) -> bool:
-    """True when the file cannot be opened for writing because a writer died with it open."""
+    """True when the file cannot be opened for writing in place: a writer died with it open (the SWMR
+    write flags are still set), or another process (a viewer, an h5py reader with swmr=True) holds it
+    open, so HDF5's file lock refuses a writer. Both are solved the same way: a fresh copy put in place
+    atomically (``repair_run_file``); readers keep the old inode (see docs/hardening-and-recovery.md)."""
     try:
         with h5py.File(path, "r+", libver="latest"):
             return False
     except OSError as exc:
         text = str(exc)
-        if "already open for write" in text or "file consistency flags" in text:
+        if "already open for write" in text or "file consistency flags" in text or _locked_by_reader(exc):
             return True
         raise StoreError(f"{path}: cannot open the run file ({exc})") from None
+
+
+def make_writable(path: str | Path, reserve_bytes: int = 0) -> "RepairReport | None":
+    """Repair (copy and replace) when ``needs_repair``; the report, or None when the file was writable."""
+    if needs_repair(path):
+        return repair_run_file(path, reserve_bytes)
+    return None
 
 
 @dataclass
@@ -188,6 +210,7 @@ class ResumePoint:
     dose_photons: float  # incident photons (camera) of all bright frames kept, refused ones included
     last_record_t_s: float  # epoch seconds of the last frame or event
     outcome: str  # 'stopped', 'fault', or 'no end recorded (killed)'
+    finish_only: bool = False  # every planned frame set is in the file: only estimates and the end record are missing
 
     @property
     def gap_s(self) -> float:
@@ -237,6 +260,8 @@ def resume_point(path: str | Path) -> ResumePoint:
         end = rf.last_end()
         if end is not None and end["message"].startswith("run finished"):
             raise ResumeError(f"{path}: the run finished ({end['message']}); nothing to resume")
+        if end is not None and "no resume can fix this" in end["message"]:
+            raise ResumeError(f"{path}: {end['message'].removeprefix('run ')}")
         if end is None:
             pid = _writer_alive(events)
             if pid is not None:
@@ -264,8 +289,7 @@ def resume_point(path: str | Path) -> ResumePoint:
                 complete.append(int(info["pass_index"][rows[0]]))
         complete = sorted(set(complete))
         first_pass = complete[-1] + 1 if complete else 0
-        if first_pass >= plan["passes"]:
-            raise ResumeError(f"{path}: all {plan['passes']} frame sets are in the file; nothing to resume")
+        finish_only = first_pass >= plan["passes"]  # killed (or stopped) after the last frame: finish it
         nr = _committed_rows(e, "refused", "refused_info") if "refused" in e else 0
         refused = e["refused_info"][:nr] if nr else None
         dose = float(np.clip(info["photons"], 0, None).sum()) if n else 0.0
@@ -283,5 +307,5 @@ def resume_point(path: str | Path) -> ResumePoint:
             passes=int(plan["passes"]), dark_frames=int(plan["dark_frames"]), exposure_s=exposure,
             interval_s=plan.get("interval_s"), complete_passes=complete, first_pass=first_pass,
             first_set_index=int(max(int(sets.max()), -1)) + 1, dose_photons=dose,
-            last_record_t_s=max(times) if times else time.time(), outcome=outcome,
+            last_record_t_s=max(times) if times else time.time(), outcome=outcome, finish_only=finish_only,
         )

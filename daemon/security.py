@@ -10,8 +10,10 @@ Rules
   clients whose public key is in ``authorized_clients_dir`` get in (ZeroMQ's
   authenticator thread, ``zmq.auth``). Clients load their own secret key and the
   server's public key (``ClientKeys``).
-- The stream is a PUB socket: it cannot receive commands, so it may bind to any
-  interface (read-only exposure); it is not encrypted.
+- The stream is an XPUB socket that applies only short topic subscriptions (``stream``).
+  Bound off loopback it is a CURVE server by default (``[stream] curve = "auto"``, the
+  same keys as the control socket; ``check_stream_binding``); ``curve = "off"`` publishes
+  it unencrypted, and then identities and paths are withheld from its messages.
 - Every socket sets ``zmq.MAXMSGSIZE`` so an oversized message drops the peer
   instead of filling memory.
 
@@ -153,6 +155,19 @@ def check_control_binding(address: str, keys: ServerKeys | None) -> None:
             "bind control to tcp://127.0.0.1:PORT, or make keys with 'maskrun keys DIR' and set [service] "
             "server_secret_key = 'DIR/server.key_secret' and authorized_clients_dir = 'DIR/authorized_clients'"
         )
+
+
+def check_stream_binding(address: str, keys: ServerKeys | None, curve: str = "auto") -> bool:
+    """Whether the stream uses CURVE: "auto" = when bound off loopback, "on" = always, "off" = never.
+    Raises InsecureBinding when CURVE is wanted and no keys are configured."""
+    want = curve == "on" or (curve == "auto" and not is_loopback_address(address))
+    if want and keys is None:
+        raise InsecureBinding(
+            f"stream address {address} is reachable from other machines, and the stream uses CURVE there by default "
+            "([stream] curve = 'auto') but no keys are configured; bind the stream to tcp://127.0.0.1:PORT, make keys "
+            "with 'maskrun keys DIR' and set [service] server_secret_key / authorized_clients_dir, or set "
+            "[stream] curve = 'off' to publish it unencrypted to anyone (identities and paths are withheld)")
+    return want
 
 
 def apply_server_keys(sock: zmq.Socket, keys: ServerKeys) -> None:

@@ -63,7 +63,7 @@ from typing import Callable
 import numpy as np
 
 from maskrun.drivers import DeviceError, DeviceTimeout
-from maskrun.drivers.errors import DeviceDisconnected, DeviceFault
+from maskrun.drivers.errors import DeviceDisconnected, DeviceFault, DeviceMisconfigured
 
 from .bench import Bench
 from .checks import CheckLimits, FrameIdTracker, check_frame, downsample_preview
@@ -200,6 +200,7 @@ class RunSummary:
     pauses: int = 0
     refused: int = 0  # frames kept in /entry/refused
     sets_in_file: int = 0  # complete frame sets in the file (with those of earlier sessions of a resumed run)
+    resumable: bool = True  # False: the run could not take its first frame for a reason a resume repeats
 
 
 @dataclass
@@ -273,6 +274,7 @@ class Sequencer:
         self.pauses = 0
         self.refused = 0
         self.last_estimate = (float("nan"), float("nan"), float("nan"))  # true error, error estimate, residual
+        self._unfixable = False  # set when the first frame cannot be taken for a reason a resume repeats
         self._progress = Progress(State.idle, -1, -1, 0, (plan.passes - plan.first_pass) * self.k)
         # one reusable frame-set buffer (K, H, W) float32, grid orientation
         self._set_buffer = np.zeros((self.k, *bench.grid_shape), dtype=np.float32)
@@ -409,6 +411,10 @@ class Sequencer:
         except DeviceError as exc:
             final, message = State.fault, str(exc)
             late_estimates = True
+            if isinstance(exc, DeviceMisconfigured) and self.frames == 0 and self.darks == 0:
+                # the device refused the run's own settings before the first frame: a resume (the same
+                # stored settings) would fail the same way
+                self._unfixable = True
         except Exception as exc:
             final, message = State.fault, f"{type(exc).__name__}: {exc}"
             raise
@@ -426,8 +432,11 @@ class Sequencer:
                     self.event("run_end", f"run finished: {in_file} complete frame sets")
                 else:
                     level = "warning" if final == State.stopped else "error"
-                    self.event("run_end", f"run {final.value}: {message}; {in_file} complete frame sets kept; "
-                               f"continue with: maskrun resume {self.plan.output_path}", level)
+                    then = (f"continue with: maskrun resume {self.plan.output_path}" if not self._unfixable else
+                            "no resume can fix this (it would use the same settings): start a new run with "
+                            "settings the device accepts")
+                    self.event("run_end", f"run {final.value}: {message}; {in_file} complete frame sets kept; {then}",
+                               level)
                 self.store.flush()
             except StoreError:
                 pass  # the disk is full: the text log has the line; the file keeps what was flushed
@@ -936,4 +945,5 @@ class Sequencer:
             pauses=self.pauses,
             refused=self.refused,
             sets_in_file=self.plan.first_pass + self.passes_complete,
+            resumable=not self._unfixable,
         )

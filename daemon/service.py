@@ -16,9 +16,10 @@ Threads
 
 Sockets
 -------
-- control: REP, bound to ``[service] control_address`` (loopback unless CURVE keys
-  are configured, see ``security``), ``MAXMSGSIZE`` = ``HARD_MAX_REQUEST_BYTES``;
-  requests above ``max_request_bytes`` (but below the hard limit) get an error reply.
+- control: ROUTER (``control.control_socket``; clients use REQ), bound to ``[service] control_address``
+  (loopback unless CURVE keys are configured, see ``security``), ``MAXMSGSIZE`` = ``HARD_MAX_REQUEST_BYTES``;
+  requests above ``max_request_bytes`` (but below the hard limit) get an error reply. Every reply is
+  addressed to the peer identity its request came with; junk connections cannot shift it.
 - stream: PUB (``ServicePublisher``), ``[service] publish_address``, send high-water
   mark ``[stream] preview_hwm``: a slow subscriber loses messages, acquisition never waits.
 - reconstruction: PUSH/PULL on loopback to the worker (``recon_link``).
@@ -53,6 +54,7 @@ from .security import (
     ServerKeys,
     apply_server_keys,
     check_control_binding,
+    check_stream_binding,
     connect_host_for,
     is_loopback_address,
     load_server_keys,
@@ -64,7 +66,7 @@ from .stream import Publisher
 RUN_STATES = ("preparing", "darks", "acquiring", "paused", "finishing")
 PLANCK_J_S = 6.62607015e-34  # exact (SI 2019); CODATA 2018, Tiesinga et al., Rev. Mod. Phys. 93, 025010 (2021)
 LIGHT_SPEED_M_S = 299792458.0  # exact (SI definition)
-STREAM_SUBSCRIPTION_MAX_BYTES = 4096  # a PUB socket only receives subscriptions; they are short
+
 
 
 class Refused(Exception):
@@ -74,10 +76,9 @@ class Refused(Exception):
 class ServicePublisher(Publisher):
     """The stream publisher, recording recent alerts and counting messages for status."""
 
-    def __init__(self, context: zmq.Context, address: str, *, hwm: int, alerts: int = 20):
-        super().__init__(context, address, hwm=hwm)
-        # the PUB socket receives only subscription messages: keep them small
-        self._sock.setsockopt(zmq.MAXMSGSIZE, STREAM_SUBSCRIPTION_MAX_BYTES)
+    def __init__(self, context: zmq.Context, address: str, *, hwm: int, alerts: int = 20, keys=None,
+                 curve: str = "auto"):
+        super().__init__(context, address, hwm=hwm, keys=keys, curve=curve)  # XPUB, bounded subscriptions
         self.recent_alerts: collections.deque = collections.deque(maxlen=alerts)
         self.sent: collections.Counter = collections.Counter()
 
@@ -118,6 +119,7 @@ class Service:
             self.keys = load_server_keys(base / sc.server_secret_key, base / sc.authorized_clients_dir)
         # refuse an exposed control socket before anything is opened
         check_control_binding(self.control_address_requested, self.keys)
+        check_stream_binding(self.publish_address_requested, self.keys, cfg.stream.curve)
         self.state = "starting"
         self.exposure_s = cfg.camera.exposure_s
         self.ack: Acknowledgement | None = None
@@ -157,16 +159,13 @@ class Service:
             self.ctx = zmq.Context()
             if self.keys is not None:
                 self.auth = start_authenticator(self.ctx, self.keys)
-            self.sock = self.ctx.socket(zmq.REP)
-            self.sock.setsockopt(zmq.LINGER, 0)
-            self.sock.setsockopt(zmq.MAXMSGSIZE, C.HARD_MAX_REQUEST_BYTES)
-            self.sock.setsockopt(zmq.SNDHWM, 100)
-            self.sock.setsockopt(zmq.RCVHWM, 100)
+            self.sock = C.control_socket(self.ctx)
             if self.keys is not None:
                 apply_server_keys(self.sock, self.keys)
             self.sock.bind(self.control_address_requested)
             self.control_address = self.sock.getsockopt_string(zmq.LAST_ENDPOINT)
-            self.pub = ServicePublisher(self.ctx, self.publish_address_requested, hwm=cfg.stream.preview_hwm)
+            self.pub = ServicePublisher(self.ctx, self.publish_address_requested, hwm=cfg.stream.preview_hwm,
+                                        keys=self.keys, curve=cfg.stream.curve)
             self.publish_address = connect_host_for(self.pub.address, self.control_address)
             from .session import make_recon_link
 
@@ -211,7 +210,7 @@ class Service:
             self.open()
         if ready is not None:
             ready({"control_address": self.control_address, "publish_address": self.publish_address,
-                   "pid": os.getpid(), "curve": self.keys is not None})
+                   "pid": os.getpid(), "curve": self.keys is not None, "firmware": self.bench.firmware_info()})
         interval = self.cfg.service.status_interval_s
         next_status = 0.0
         try:
@@ -230,9 +229,10 @@ class Service:
     # --- requests ----------------------------------------------------------------------
     def _answer_one(self) -> None:
         try:
-            parts = self.sock.recv_multipart(copy=True)
+            parts = self.sock.recv_multipart(flags=zmq.NOBLOCK, copy=True)
         except zmq.ZMQError:
             return
+        envelope, parts = C.split_envelope(parts)  # ROUTER: the reply goes back to exactly this peer
         raw = parts[0] if len(parts) == 1 else b""
         try:
             if len(parts) != 1:
@@ -248,9 +248,10 @@ class Service:
             self.log(f"internal error answering a request: {traceback.format_exc()}")
             reply = C.error_reply(f"internal error ({type(exc).__name__}: {exc}); the service keeps running", self.state)
         try:
-            self.sock.send(reply)
-        except zmq.ZMQError as exc:
-            self.log(f"could not send a reply: {exc}")
+            self.sock.send_multipart([*envelope, reply], flags=zmq.NOBLOCK)
+        except zmq.ZMQError as exc:  # EHOSTUNREACH: the peer left before its reply (router mandatory)
+            if exc.errno not in (zmq.EHOSTUNREACH, zmq.EAGAIN):
+                self.log(f"could not send a reply: {exc}")
 
     def handle(self, req) -> dict:
         """Dispatch one validated request; returns the result dict or raises Refused."""
@@ -428,10 +429,12 @@ class Service:
         return {"exposure_s": self.exposure_s}
 
     def _check_watchdog(self, exposure_s: float) -> None:
-        """Refuse an exposure the safety box's watchdog would cut short (see bench.check_watchdog)."""
-        from .bench import check_watchdog
+        """Refuse an exposure the camera cannot take (its own limits, bench.check_exposure) or that the
+        safety box's watchdog would cut short (bench.check_watchdog)."""
+        from .bench import check_exposure, check_watchdog
 
         try:
+            check_exposure(self.bench, exposure_s, "exposure_s")
             check_watchdog(self.bench, exposure_s)
         except ConfigError as exc:
             raise Refused(str(exc)) from None
@@ -609,6 +612,7 @@ class Service:
             "control_address": self.control_address,
             "publish_address": self.publish_address,
             "curve": self.keys is not None,
+            "stream_curve": bool(self.pub is not None and self.pub.authenticated),
             "safety": {"acknowledged": ack is not None, "acknowledgement": ack, "interlock_closed": interlock,
                        "shutter_open": shutter, "source": safety_source, "laser_class": self.cfg.laser.laser_class,
                        "wavelength_m": self.cfg.laser.wavelength_m},

@@ -17,7 +17,7 @@ from typing import Callable
 import numpy as np
 import zmq
 
-from .bench import Bench, check_watchdog
+from .bench import Bench, check_exposure, check_watchdog
 from .disk import MB, DiskPlan, expected_run_bytes, frame_itemsize, plan_disk
 from .budget import dark_frame_advice
 from .recon_link import LiveData, ReconLink
@@ -119,7 +119,8 @@ def execute_run(
     'resume' event (with ``resume_note``: the gap) and the new acknowledgement are logged, and the
     plan's first_pass / first_set_index say where to continue. ``extra_events`` are (kind, message,
     level) logged after the acknowledgement (e.g. the repair report)."""
-    check_watchdog(bench, plan.exposure_s)  # ConfigError: nothing written yet
+    check_exposure(bench, plan.exposure_s, "exposure_s")  # ConfigError: nothing written yet
+    check_watchdog(bench, plan.exposure_s)
     disk = plan_run_disk(bench, plan)  # DiskSpaceError: nothing written yet
     own_recon = recon is None
     earlier = None

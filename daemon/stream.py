@@ -13,11 +13,29 @@ Drop policy: the PUB socket has a send high-water mark; a subscriber that falls
 behind loses whole messages (ZeroMQ drops for that subscriber only), never
 slowing acquisition. Gaps show up as jumps in ``seq``. The run file never drops
 anything.
+
+Protection against subscribers (see docs/hardening-and-recovery.md):
+
+- The socket is an XPUB in manual mode: ZeroMQ hands every subscription to the
+  publisher instead of storing it, and only subscriptions that are a prefix of a
+  topic name (at most ``MAX_SUBSCRIPTION_BYTES``) are applied. A PUB socket stores
+  every subscription's bytes in its prefix tree (an 8 MiB subscription cost about
+  100 MB of daemon memory, never given back); here a long or foreign one is dropped.
+  ``MAXMSGSIZE`` drops a peer that sends a larger message before it is buffered.
+- Per-subscriber memory is bounded by the send high-water mark (messages queued per
+  subscriber, ``[stream] preview_hwm``) and the kernel socket buffers.
+- CURVE (``[stream] curve``): "auto" (default) encrypts and authenticates the stream
+  whenever it is bound off loopback (the service's keys; without keys such a binding
+  is refused), "on" always, "off" never.
+- A stream that is not authenticated never carries identities or paths: names of
+  whoever acknowledged the safety notice, file paths and socket addresses are replaced
+  (``redact``) before sending.
 """
 
 from __future__ import annotations
 
 import json
+import re
 import threading
 import time
 from dataclasses import dataclass
@@ -30,6 +48,34 @@ from pydantic import BaseModel, ConfigDict, Field
 SCHEMA_VERSION = 1
 TOPICS = ("frame", "preview", "check", "alert", "frameset", "estimate", "status", "event")
 MAX_HEADER_BYTES = 64 * 1024
+MAX_SUBSCRIPTION_BYTES = 64  # longer subscriptions are never applied (the topic names are short)
+SUBSCRIPTION_MESSAGE_MAX_BYTES = 4096  # zmq.MAXMSGSIZE of the publisher: a larger message drops its peer
+WITHHELD = "(withheld: stream not authenticated)"
+_REDACT_KEYS = {"config", "config_path", "control_address", "publish_address", "output_path", "output_dir",
+                "acknowledgement", "who", "how", "operator", "path", "host", "worker"}
+_PATH_RE = re.compile(r"(?:(?<=\s)|(?<=^)|(?<=[('\"=:]))(?:~|\.{1,2})?/[^\s'\"),;]+")
+_ADDRESS_RE = re.compile(r"\b(?:tcp|ipc|inproc)://[^\s'\"),;]+")
+_WHO_RE = re.compile(r"acknowledged by [^;]*")
+
+
+def redact(value):
+    """A copy of a message's meta without identities, paths or socket addresses (for unauthenticated streams)."""
+    if isinstance(value, dict):
+        return {k: (WITHHELD if k in _REDACT_KEYS and v not in (None, "") else redact(v)) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [redact(v) for v in value]
+    if isinstance(value, str):
+        text = _WHO_RE.sub(lambda m: "acknowledged (name withheld)", value)
+        text = _ADDRESS_RE.sub("<address>", text)
+        return _PATH_RE.sub("<path>", text)
+    return value
+
+
+def subscription_allowed(topic_prefix: bytes) -> bool:
+    """A subscription is applied only when it is short and a prefix of a topic name (b"" = all topics)."""
+    if len(topic_prefix) > MAX_SUBSCRIPTION_BYTES:
+        return False
+    return any(t.encode().startswith(topic_prefix) for t in TOPICS)
 
 
 class StreamHeader(BaseModel):
@@ -58,23 +104,53 @@ def _jsonable(obj):
 
 
 class Publisher:
-    """Thread-safe publisher (one lock around the socket)."""
+    """Thread-safe publisher (one lock around the socket). ``keys``: security.ServerKeys for a CURVE
+    stream (ZeroMQ's authenticator must run on ``context``); ``curve``: "auto" | "on" | "off"."""
 
-    def __init__(self, context: zmq.Context, address: str = "tcp://127.0.0.1:0", *, hwm: int = 10):
-        self._sock = context.socket(zmq.PUB)
+    def __init__(self, context: zmq.Context, address: str = "tcp://127.0.0.1:0", *, hwm: int = 10,
+                 keys=None, curve: str = "auto"):
+        from .security import apply_server_keys, check_stream_binding
+
+        use_curve = check_stream_binding(address, keys, curve)  # InsecureBinding before any socket
+        self._sock = context.socket(zmq.XPUB)
+        self._sock.setsockopt(zmq.XPUB_MANUAL, 1)  # subscriptions come to us; only the ones allowed are applied
         self._sock.setsockopt(zmq.SNDHWM, hwm)
+        self._sock.setsockopt(zmq.RCVHWM, 64)
+        self._sock.setsockopt(zmq.MAXMSGSIZE, SUBSCRIPTION_MESSAGE_MAX_BYTES)
         self._sock.setsockopt(zmq.LINGER, 0)
+        if use_curve:
+            apply_server_keys(self._sock, keys)
+        self.authenticated = use_curve
+        self.subscriptions_refused = 0
         self._sock.bind(address)
         self.address = self._sock.getsockopt_string(zmq.LAST_ENDPOINT)
         self._lock = threading.Lock()
         self._seq: dict[str, int] = {}
         self._global = 0
 
+    def _apply_subscriptions(self) -> None:
+        """Apply pending (un)subscriptions that are allowed; drop the rest (caller holds the lock)."""
+        for _ in range(1000):  # bounded work per publish
+            try:
+                msg = self._sock.recv(zmq.NOBLOCK, copy=True)
+            except zmq.Again:
+                return
+            if not msg or msg[0] not in (0, 1):
+                continue
+            prefix = msg[1:]
+            if not subscription_allowed(prefix):
+                self.subscriptions_refused += 1
+                continue
+            self._sock.setsockopt(zmq.SUBSCRIBE if msg[0] == 1 else zmq.UNSUBSCRIBE, prefix)
+
     def publish(self, topic: str, meta: dict | None = None, array: np.ndarray | None = None) -> int:
         """Send one message; returns its per-topic sequence number. Never blocks (drops instead)."""
         if topic not in TOPICS:
             raise ValueError(f"unknown stream topic {topic!r}; topics are {', '.join(TOPICS)}")
+        if not self.authenticated and meta:
+            meta = redact(meta)
         with self._lock:
+            self._apply_subscriptions()
             seq = self._seq.get(topic, 0)
             self._seq[topic] = seq + 1
             g = self._global
@@ -141,11 +217,17 @@ def decode_message(parts: list) -> tuple[StreamHeader, np.ndarray | None]:
 class Subscriber:
     """Subscribes to a publisher and tracks per-topic gaps."""
 
-    def __init__(self, context: zmq.Context, address: str, topics: tuple[str, ...] = TOPICS, *, hwm: int = 100):
+    def __init__(self, context: zmq.Context, address: str, topics: tuple[str, ...] = TOPICS, *, hwm: int = 100,
+                 keys=None):
+        """keys: security.ClientKeys for a CURVE stream."""
         self._sock = context.socket(zmq.SUB)
         self._sock.setsockopt(zmq.RCVHWM, hwm)
         self._sock.setsockopt(zmq.LINGER, 0)
         self._sock.setsockopt(zmq.MAXMSGSIZE, 1 << 31)
+        if keys is not None:
+            from .security import apply_client_keys
+
+            apply_client_keys(self._sock, keys)
         for t in topics:
             self._sock.setsockopt(zmq.SUBSCRIBE, t.encode())
         self._sock.connect(address)

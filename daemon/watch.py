@@ -322,13 +322,13 @@ def render(model: WatchModel, image_cols: int = 40, image_rows: int = 32, now_s:
 
 
 def run_watch(publish_address: str, console: Console, *, duration_s: float | None = None, refresh_hz: float = 4.0,
-              context=None) -> WatchModel:
+              context=None, keys=None) -> WatchModel:
     """Subscribe and keep the dashboard live until duration_s (None: until Ctrl-C). Returns the model."""
     import zmq
     from rich.live import Live
 
     ctx = context or zmq.Context.instance()
-    sub = Subscriber(ctx, publish_address, WATCH_TOPICS, hwm=20)
+    sub = Subscriber(ctx, publish_address, WATCH_TOPICS, hwm=20, keys=keys)  # keys: a CURVE stream
     model = WatchModel()
     period = 1.0 / refresh_hz
     t_end = None if duration_s is None else time.monotonic() + duration_s

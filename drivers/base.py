@@ -187,6 +187,15 @@ class Camera(Device):
     def exposure_s(self, value: float) -> None: ...
 
     @property
+    def exposure_range_s(self) -> tuple[float, float]:
+        """(shortest, longest) exposure the camera accepts, seconds, as the device reports it.
+
+        The daemon checks every exposure against it before anything is written (config read,
+        'set_exposure', 'start'). Drivers that know their limits override it; the default
+        (0, inf) means "not reported" (the setter is then the only check)."""
+        return (0.0, float("inf"))
+
+    @property
     def gain(self) -> float:
         """Analog gain setting in the camera's own units (1.0 = default)."""
         return 1.0

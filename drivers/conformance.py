@@ -26,7 +26,9 @@ The checks (the contract in ``maskrun.drivers.base``):
   integer type wide enough for ``bit_depth``, no value above ``max_dn``; the frame carries
   an int id, a finite positive time stamp and exposure, JSON-serialisable metadata.
 * ``exposure``: two exposures set are read back (within 5 %, cameras round to their clock);
-  a negative or NaN exposure raises DeviceMisconfigured.
+  a negative or NaN exposure raises DeviceMisconfigured; the limits the driver reports
+  (``exposure_range_s``) are what its setter takes: the ends are accepted, a tenth of the
+  shortest and ten times the longest (when reported) raise DeviceMisconfigured.
 * ``software trigger``: the mode reads back; five trigger + grab cycles give frames whose
   ids advance by at least one each.
 * ``hardware trigger``: the mode can be set and read back, then set back to software;
@@ -214,7 +216,21 @@ class _Kit:
                 except Exception as exc:  # noqa: BLE001 - a wrong error type is the finding
                     raise _Fail(f"exposure {bad} raised {type(exc).__name__}, expected DeviceMisconfigured") from None
                 raise _Fail(f"exposure {bad} s was accepted (reads back {cam.exposure_s!r}); expected DeviceMisconfigured")
-        return f"set/read back {', '.join(seen)} s; -1 and NaN refused"
+            lo, hi = (float(v) for v in cam.exposure_range_s)
+            _expect(0 <= lo <= hi, f"exposure_range_s ({lo:g}, {hi:g}) is not 0 <= shortest <= longest")
+            limits = [(v, True) for v in (lo, hi) if 0 < v < math.inf]
+            limits += [(lo / 10, False)] if lo > 0 else []
+            limits += [(hi * 10, False)] if hi < math.inf else []
+            for value, accepted in limits:
+                try:
+                    cam.exposure_s = value
+                    ok = True
+                except DeviceMisconfigured:
+                    ok = False
+                _expect(ok == accepted, f"exposure {value:g} s was {'refused' if accepted else 'accepted'} although "
+                        f"exposure_range_s reports ({lo:g}, {hi:g}) s")
+            cam.exposure_s = start
+        return f"set/read back {', '.join(seen)} s; -1 and NaN refused; range ({lo:g}, {hi:g}) s agrees with the setter"
 
     def check_software_trigger(self) -> str:
         with self.opened() as cam:

@@ -209,6 +209,10 @@ class SimulatedCamera(Camera):
 
     # --------------------------------------------------------- acquisition
     @property
+    def exposure_range_s(self) -> tuple[float, float]:
+        return (float(self.settings.min_exposure_s), float(self.settings.max_exposure_s))
+
+    @property
     def exposure_s(self) -> float:
         return self._exposure_s
 

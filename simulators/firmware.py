@@ -29,6 +29,9 @@ Safety box (interlock chain and beam shutter):
     SHUTTER CLOSE   -> OK SHUTTER CLOSED   (always accepted)
     WATCHDOG <s>    -> OK WATCHDOG <s>     (0 = off; ERR if negative or not a number)
     WATCHDOG?       -> WATCHDOG <s> TRIPS <n>
+    TRIPS?          -> TRIPS INTERLOCK <a> WATCHDOG <b> LINK <c> LAST <reason> <epoch s>
+                       (times the box closed the shutter by itself, and the last one: reason
+                       interlock | watchdog | link | none, wall-clock time of that close)
 
 The safety box is fail-safe: if the interlock opens while the shutter is
 open it closes the shutter by itself at once (hardware interlock), and when
@@ -36,6 +39,13 @@ its host link is lost (unplug, stop) it closes the shutter too. With the
 watchdog armed, a shutter left open while the host sends no command for
 ``s`` seconds (a hung or frozen host program) is closed by the box itself;
 every command counts as a sign of life.
+
+Link loss: in-process (the default) the simulator keeps its own handle on the terminal
+side, so only an unplug is a link loss. Run as its own process (``firmware_process``,
+``detect_hangup=True``) it lets go of the terminal side once the host has sent its first
+command; when the host's last handle closes (the host program exited or was killed) the
+pseudo-terminal hangs up and the box closes the shutter at once, as a box does when its
+host link drops. It serves the host again when a program reopens the port.
 
 Faults (``FirmwareFault`` or plain dicts), counted over command lines received
 since the start (1 = first command):
@@ -63,6 +73,8 @@ from typing import Iterable, Literal
 
 from pydantic import BaseModel, ConfigDict, Field
 
+from .firmware_protocols import _PROTOCOLS
+
 __all__ = ["FirmwareFault", "FirmwareHandle", "start_firmware", "FIRMWARE_KINDS"]
 
 log = logging.getLogger(__name__)
@@ -81,169 +93,6 @@ class FirmwareFault(BaseModel):
     duration_s: float = Field(default=1.0, ge=0.0, description="how long the device stays unplugged (unplug)")
 
 
-class _Protocol:
-    """Command interpreter of one device kind. ``handle(line) -> reply``; ``tick(now)`` runs timers."""
-
-    ident = "ID sim-device 1.0"
-
-    def __init__(self, optics, settle_s: float):
-        self.optics = optics
-        self.settle_s = float(settle_s)
-
-    def handle(self, line: str) -> str:
-        words = line.split()
-        if not words:
-            return "ERR empty command"
-        if line == "ID?":
-            return self.ident
-        return self.command(words)
-
-    def command(self, words: list[str]) -> str:  # pragma: no cover - overridden
-        return f"ERR unknown command {words[0]}"
-
-    def next_deadline(self) -> float | None:
-        return None
-
-    def tick(self, now: float) -> None:
-        pass
-
-    def link_lost(self) -> None:
-        pass
-
-    def close(self) -> None:
-        pass
-
-
-class _ModulatorProtocol(_Protocol):
-    ident = "ID sim-modulator 1.0"
-
-    def __init__(self, optics, settle_s):
-        super().__init__(optics, settle_s)
-        self.count = optics.mask_count
-        self.shown_at = -float("inf")
-        self.trigger_out = True
-        self.trigger_due: float | None = None
-
-    def command(self, words):
-        cmd, args = words[0], words[1:]
-        if cmd == "COUNT?" and not args:
-            return f"COUNT {self.count}"
-        if cmd == "COUNT" and len(args) == 1:
-            try:
-                k = int(args[0])
-            except ValueError:
-                return f"ERR count must be a whole number, got {args[0]}"
-            stored = self.optics.mask_count
-            if not 1 <= k <= stored:
-                return f"ERR count {k} outside 1..{stored} (masks stored in the controller)"
-            self.count = k
-            return f"OK COUNT {k}"
-        if cmd == "SHOW" and len(args) == 1:
-            try:
-                k = int(args[0])
-            except ValueError:
-                return f"ERR mask index must be a whole number, got {args[0]}"
-            if not 0 <= k < self.count:
-                return f"ERR mask {k} outside 0..{self.count - 1}"
-            self.optics.shown_mask = k
-            self.shown_at = time.monotonic()
-            if self.trigger_out:
-                self.trigger_due = self.shown_at + self.settle_s
-            return f"OK SHOW {k}"
-        if cmd == "READY?" and not args:
-            return "READY 1" if time.monotonic() - self.shown_at >= self.settle_s else "READY 0"
-        if cmd == "TRIGOUT" and len(args) == 1 and args[0] in ("0", "1"):
-            self.trigger_out = args[0] == "1"
-            if not self.trigger_out:
-                self.trigger_due = None
-            return f"OK TRIGOUT {args[0]}"
-        return f"ERR unknown command {' '.join(words)}"
-
-    def next_deadline(self):
-        return self.trigger_due
-
-    def tick(self, now):
-        if self.trigger_due is not None and now >= self.trigger_due:
-            self.trigger_due = None
-            self.optics.fire_trigger()
-
-
-class _SafetyProtocol(_Protocol):
-    ident = "ID sim-safety 1.0"
-
-    def __init__(self, optics, settle_s):
-        super().__init__(optics, settle_s)
-        self.trips = 0
-        self.watchdog_s = 0.0
-        self.watchdog_trips = 0
-        self.last_command_s = time.monotonic()
-        self._unsubscribe = optics.subscribe(self._on_optics_change)
-
-    def handle(self, line: str) -> str:
-        self.last_command_s = time.monotonic()  # any command is a sign of life for the watchdog
-        return super().handle(line)
-
-    def next_deadline(self):
-        if self.watchdog_s > 0 and self.optics.shutter_open:
-            return self.last_command_s + self.watchdog_s
-        return None
-
-    def tick(self, now):
-        if self.watchdog_s > 0 and self.optics.shutter_open and now - self.last_command_s >= self.watchdog_s:
-            self.optics.shutter_open = False
-            self.watchdog_trips += 1
-            log.warning("simulated safety box: no command for %.3g s with the shutter open; watchdog closed it",
-                        now - self.last_command_s)
-
-    def _on_optics_change(self, name, value):
-        # Hardware interlock: opening the chain closes the shutter at once.
-        if name == "interlock_closed" and not value and self.optics.shutter_open:
-            self.optics.shutter_open = False
-            self.trips += 1
-
-    def command(self, words):
-        line = " ".join(words)
-        if line == "INTERLOCK?":
-            return "INTERLOCK CLOSED" if self.optics.interlock_closed else "INTERLOCK OPEN"
-        if line == "SHUTTER?":
-            return "SHUTTER OPEN" if self.optics.shutter_open else "SHUTTER CLOSED"
-        if line == "SHUTTER OPEN":
-            if not self.optics.interlock_closed:
-                return "ERR interlock open"
-            if self.settle_s > 0:
-                time.sleep(self.settle_s)
-            if not self.optics.interlock_closed:  # opened while the shutter moved
-                return "ERR interlock open"
-            self.optics.shutter_open = True
-            if not self.optics.interlock_closed:  # opened in the same instant: the hardware wins
-                self.optics.shutter_open = False
-                return "ERR interlock open"
-            return "OK SHUTTER OPEN"
-        if line == "SHUTTER CLOSE":
-            self.optics.shutter_open = False
-            return "OK SHUTTER CLOSED"
-        if line == "WATCHDOG?":
-            return f"WATCHDOG {self.watchdog_s:g} TRIPS {self.watchdog_trips}"
-        if words[0] == "WATCHDOG" and len(words) == 2:
-            try:
-                seconds = float(words[1])
-            except ValueError:
-                seconds = float("nan")
-            if not seconds >= 0 or seconds == float("inf"):
-                return f"ERR watchdog must be 0 (off) or a positive number of seconds, got {words[1]}"
-            self.watchdog_s = seconds
-            return f"OK WATCHDOG {seconds:g}"
-        return f"ERR unknown command {line}"
-
-    def link_lost(self):
-        self.optics.shutter_open = False
-
-    def close(self):
-        self.optics.shutter_open = False
-        self._unsubscribe()
-
-
-_PROTOCOLS = {"modulator": _ModulatorProtocol, "safety": _SafetyProtocol}
 
 
 def _garble(reply: bytes) -> bytes:
@@ -259,7 +108,8 @@ class FirmwareHandle:
     on a new pty behind the same path. stop(): end the thread and remove the folder.
     """
 
-    def __init__(self, kind: str, optics, faults: Iterable = (), settle_s: float = 0.0, name: str | None = None):
+    def __init__(self, kind: str, optics, faults: Iterable = (), settle_s: float = 0.0, name: str | None = None,
+                 detect_hangup: bool = False, port_dir: str | None = None):
         if kind not in _PROTOCOLS:
             raise ValueError(f"unknown firmware kind {kind!r}; choose one of {', '.join(FIRMWARE_KINDS)}")
         self.kind = kind
@@ -270,7 +120,10 @@ class FirmwareHandle:
             for f in faults
         ]
         self._protocol = _PROTOCOLS[kind](optics, settle_s)
-        self._dir = tempfile.mkdtemp(prefix=f"maskrun-{self.name}-")
+        self._dir = tempfile.mkdtemp(prefix=f"maskrun-{self.name}-", dir=port_dir)
+        self._detect_hangup = detect_hangup
+        self._host_seen = False  # detect_hangup: the host sent a command, so our own slave handle is let go
+        self.link_down = False  # detect_hangup: the host's last handle on the terminal closed
         self.port = os.path.join(self._dir, self.name)
         self._lock = threading.Lock()
         self._commands_seen = 0
@@ -292,6 +145,11 @@ class FirmwareHandle:
     def commands_seen(self) -> int:
         with self._lock:
             return self._commands_seen
+
+    @property
+    def host_link_up(self) -> bool:
+        """detect_hangup: a host has sent a command and still has the port open."""
+        return self._host_seen and not self.link_down
 
     @property
     def plugged(self) -> bool:
@@ -345,6 +203,7 @@ class FirmwareHandle:
         fcntl.fcntl(master, fcntl.F_SETFD, fcntl.FD_CLOEXEC)
         self._master, self._slave = master, slave
         self._slave_path = os.ttyname(slave)
+        self._host_seen = self.link_down = False
         self._buffer = b""
         tmp = self.port + ".new"
         try:
@@ -399,7 +258,9 @@ class FirmwareHandle:
         now = time.monotonic()
         deadlines = [d for d in (self._protocol.next_deadline(), self._replug_at) if d is not None]
         timeout = max(0.0, min(deadlines) - now) if deadlines else 0.5
-        fds = [self._wake_r] + ([self._master] if self._master is not None else [])
+        if self.link_down:
+            timeout = min(timeout, 0.01)  # a hung-up master is always readable (EIO): look every 10 ms instead
+        fds = [self._wake_r] + ([self._master] if self._master is not None and not self.link_down else [])
         try:
             readable, _, _ = select.select(fds, [], [], timeout)
         except (OSError, ValueError):
@@ -418,7 +279,7 @@ class FirmwareHandle:
             if self._master is None:
                 self._plug()
         self._protocol.tick(now)
-        if self._master is not None and self._master in readable:
+        if self._master is not None and (self._master in readable or self.link_down):
             self._read_commands()
 
     def _serve_requests(self) -> None:
@@ -437,11 +298,27 @@ class FirmwareHandle:
         try:
             data = os.read(self._master, 4096)
         except BlockingIOError:
+            if self.link_down:  # a program has the terminal open again: the link is back
+                self.link_down = False
+                log.info("firmware %s: host link back", self.name)
             return
         except OSError as exc:
             if exc.errno == errno.EIO:
+                if self._detect_hangup and self._host_seen and not self.link_down:
+                    self.link_down = True  # the host's last handle closed: the link dropped
+                    if self._protocol.link_lost():
+                        log.warning("firmware %s: host link lost with the shutter open; shutter closed", self.name)
+                    else:
+                        log.info("firmware %s: host link closed", self.name)
                 return
             raise
+        if self.link_down:
+            self.link_down = False
+        if self._detect_hangup and not self._host_seen and data:
+            self._host_seen = True
+            if self._slave is not None:  # from now on a hang-up of the host side is seen as EIO
+                os.close(self._slave)
+                self._slave = None
         self._buffer += data
         while b"\n" in self._buffer and self._master is not None:
             raw, self._buffer = self._buffer.split(b"\n", 1)
@@ -479,7 +356,8 @@ class FirmwareHandle:
             pass  # output buffer full or link gone: the reply is lost, as on a real line
 
 
-def start_firmware(kind: str, optics, *, faults=(), settle_s: float = 0.0, name: str | None = None) -> FirmwareHandle:
+def start_firmware(kind: str, optics, *, faults=(), settle_s: float = 0.0, name: str | None = None,
+                   detect_hangup: bool = False, port_dir: str | None = None) -> FirmwareHandle:
     """Start a firmware simulator of ``kind`` ('modulator' or 'safety') bound to ``optics``.
 
     faults: FirmwareFault models or dicts {kind, at_command, count, duration_s}.
@@ -487,4 +365,5 @@ def start_firmware(kind: str, optics, *, faults=(), settle_s: float = 0.0, name:
     shutter travel time of the safety box.
     name: name of the symlink (default: the kind). Returns the running FirmwareHandle.
     """
-    return FirmwareHandle(kind, optics, faults=faults, settle_s=settle_s, name=name)
+    return FirmwareHandle(kind, optics, faults=faults, settle_s=settle_s, name=name, detect_hangup=detect_hangup,
+                          port_dir=port_dir)

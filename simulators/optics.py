@@ -23,6 +23,7 @@ second.
 from __future__ import annotations
 
 import threading
+import time
 from typing import Callable
 
 import numpy as np
@@ -94,6 +95,18 @@ class SimulatedOptics:
         self._shutter_open = False
         self._interlock_closed = True
         self._shown_mask: int | None = None
+        self._shared = None  # SharedBenchState when the firmware runs in its own processes
+        self._triggers_consumed = 0
+
+    def attach_shared(self, shared) -> None:
+        """Keep the shutter, interlock, shown mask and trigger line in ``shared`` (a
+        simulators.shared_state.SharedBenchState), where firmware processes read and change them."""
+        with self._lock:
+            shared.shutter_open = self._shutter_open
+            shared.interlock_closed = self._interlock_closed
+            shared.shown_mask = self._shown_mask
+            self._triggers_consumed = shared.triggers_fired
+            self._shared = shared
 
     # ------------------------------------------------------------ geometry
     @property
@@ -138,16 +151,22 @@ class SimulatedOptics:
 
     def _set(self, name: str, value) -> None:
         with self._lock:
-            changed = getattr(self, "_" + name) != value
+            changed = self._get(name) != value
             setattr(self, "_" + name, value)
+            if self._shared is not None:
+                setattr(self._shared, name, value)
             listeners = list(self._listeners) if changed else []
         for listener in listeners:
             listener(name, value)
 
+    def _get(self, name: str):
+        return getattr(self._shared if self._shared is not None else self, ("" if self._shared is not None else "_")
+                       + name)
+
     @property
     def shutter_open(self) -> bool:
         with self._lock:
-            return self._shutter_open
+            return self._get("shutter_open")
 
     @shutter_open.setter
     def shutter_open(self, value: bool) -> None:
@@ -157,7 +176,7 @@ class SimulatedOptics:
     def interlock_closed(self) -> bool:
         """True while the interlock chain is complete (doors shut): the only state in which light may pass."""
         with self._lock:
-            return self._interlock_closed
+            return self._get("interlock_closed")
 
     @interlock_closed.setter
     def interlock_closed(self, value: bool) -> None:
@@ -167,7 +186,7 @@ class SimulatedOptics:
     def shown_mask(self) -> int | None:
         """Index of the mask on the modulator, or None for a blank (all-ones) mask."""
         with self._lock:
-            return self._shown_mask
+            return self._get("shown_mask")
 
     @shown_mask.setter
     def shown_mask(self, value: int | None) -> None:
@@ -278,9 +297,9 @@ class SimulatedOptics:
                 raise ValueError(f"out must be float64 of shape {self._sensor_shape}")
             out.fill(0.0)
         with self._lock:
-            if not self._shutter_open:
+            if not self._get("shutter_open"):
                 return out
-            pattern = self._pattern_per_s(self._shown_mask)
+            pattern = self._pattern_per_s(self._get("shown_mask"))
         r0, c0, h, w = self.grid_roi
         np.multiply(pattern, exposure_s, out=out[r0 : r0 + h, c0 : c0 + w])
         return out
@@ -295,6 +314,16 @@ class SimulatedOptics:
 
     def wait_trigger(self, timeout_s: float) -> bool:
         """Wait for (and consume) one trigger pulse; False if none arrives within timeout_s."""
+        if self._shared is not None:  # the pulses come from the modulator's process: watch its counter
+            deadline = time.monotonic() + max(0.0, float(timeout_s))
+            while True:
+                with self._trigger:
+                    if self._shared.triggers_fired > self._triggers_consumed:
+                        self._triggers_consumed += 1
+                        return True
+                if time.monotonic() >= deadline:
+                    return False
+                time.sleep(0.0005)
         with self._trigger:
             ok = self._trigger.wait_for(lambda: self._pending_triggers > 0, timeout=max(0.0, float(timeout_s)))
             if ok:
@@ -304,6 +333,10 @@ class SimulatedOptics:
     def clear_triggers(self) -> int:
         """Drop latched trigger pulses (a camera does this when it is armed); returns how many."""
         with self._trigger:
+            if self._shared is not None:
+                fired = self._shared.triggers_fired
+                n, self._triggers_consumed = fired - self._triggers_consumed, fired
+                return n
             n, self._pending_triggers = self._pending_triggers, 0
             return n
 
@@ -311,4 +344,4 @@ class SimulatedOptics:
     def triggers_fired(self) -> int:
         """Total trigger pulses sent since creation."""
         with self._trigger:
-            return self._triggers_fired
+            return self._shared.triggers_fired if self._shared is not None else self._triggers_fired

@@ -106,6 +106,12 @@ class AcceptsNegativeExposure(PatternCamera):
         self._exposure_s = float(value)
 
 
+class RangeNotWhatTheSetterTakes(PatternCamera):
+    @property
+    def exposure_range_s(self):
+        return (1e-3, 1.0)  # reports a minimum of 1 ms, but its setter takes any positive exposure
+
+
 class CloseFailsWhenNotOpen(PatternCamera):
     def close(self):
         if not self._open:
@@ -153,6 +159,7 @@ class WrongType(PatternCamera):
         (RoiIgnored, "roi"),
         (ExposureRounded, "exposure"),
         (AcceptsNegativeExposure, "exposure"),
+        (RangeNotWhatTheSetterTakes, "exposure"),
         (CloseFailsWhenNotOpen, "close without open"),
         (LateTimeout, "timeout"),
         (GrabsWhenClosed, "grab after close"),
