@@ -187,7 +187,7 @@ def section_c(trials: int = 30) -> None:
         sq = []
         t0 = time.perf_counter()
         for _ in range(trials):
-            est = solve(rng.poisson(y0), m, method=method).estimate
+            est = solve(rng.poisson(y0), m, method=method, dtype=np.complex64).estimate
             sq.append(np.sum(np.abs(xs - align_global_phase(xs, est)) ** 2))
         sq = np.array(sq)
         ratio = sq.mean() / crb.total_mse
@@ -205,7 +205,7 @@ def section_d() -> None:
     y = forward(x, m)
     scale = 1e7 / (y.sum() / K)
     rng = np.random.default_rng(0)
-    eng = IncrementalEngine(m)  # defaults: accumulate, 50 iterations, complex64
+    eng = IncrementalEngine(m, dtype=np.complex64)  # as the daemon: accumulate, 50 iterations, complex64
     times = []
     for p in range(4):
         u = eng.update(rng.poisson(y * scale).astype(np.float32))
@@ -220,7 +220,7 @@ def section_d() -> None:
     m = octanary_masks(K, (n, n), seed=5)
     y = forward(x, m)
     scale = 1e7 / (y.sum() / K)
-    eng = IncrementalEngine(m)
+    eng = IncrementalEngine(m, dtype=np.complex64)
     total = 0.0
     errs = []
     for p in range(3):

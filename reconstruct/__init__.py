@@ -59,9 +59,13 @@ Mask families: ``octanary_masks`` (coded-diffraction plates),
 with a lookup table), ``binary_amplitude_masks`` (DMD), ``load_masks``
 (.npy / .npz).
 
-Precision and speed: ``solve`` and the engine work in complex64 by default
-(errors down to ~1e-6); pass ``dtype=numpy.complex128`` for more digits
-(1e-10 and below). Buffers are preallocated, FFTs batched over the K masks;
+Precision and speed: precision follows the input, as in numpy: ``solve`` and
+the engine compute in complex64 when the frames and masks are single precision
+(float32 frames, complex64 masks: errors down to ~1e-6) and in complex128 when
+either is double (1e-10 and below); ``dtype=`` chooses explicitly (the daemon
+asks for complex64). ``iterations`` is a budget: the default tolerance suits
+the precision in use, and ``SolveResult.stop_reason`` says why a run stopped
+("tolerance", "precision floor", "iterations", "time budget", "stalled"). Buffers are preallocated, FFTs batched over the K masks;
 the FFT backend (numpy.fft or scipy.fft with workers) and the split of the
 masks over threads are measured per problem shape and the fastest is kept
 (``fft`` module, ``solvers.Workspace``). The ``"poisson"`` method computes

@@ -40,7 +40,7 @@ import numpy as np
 
 from . import solvers as _s
 from .bounds import shot_noise_relative_error
-from .validation import ReconstructionInputError, check_dtype, check_intensities, check_masks
+from .validation import ReconstructionInputError, check_intensities, check_masks, working_dtype
 
 __all__ = ["IncrementalEngine", "EngineUpdate", "ENGINE_MODES", "update_method"]
 
@@ -94,14 +94,16 @@ class IncrementalEngine:
     time_budget_s : optional wall-clock cap per update (seconds, > 0).
     method : "auto" (hybrid first, ER polish in accumulate mode), or any
         solver method name ("hybrid", "er", "raar", "wf", "poisson").
-    dtype : complex64 (default, fast) or complex128.
+    dtype : None (default: the precision of the masks, as ``solve`` follows its inputs:
+        complex64 masks compute in complex64, complex128 masks in complex128), or
+        complex64 / complex128 to choose (the daemon's worker asks for complex64).
     support, nonnegative : optional constraints as in ``solve``.
     seed : seed of the spectral initialization.
     propagation : None (far field) or ``NearField(...)`` (camera in the near field).
     """
 
     def __init__(self, masks, *, mode="accumulate", window=1, iterations_per_update=50,
-                 time_budget_s=None, method="auto", dtype=np.complex64, support=None,
+                 time_budget_s=None, method="auto", dtype=None, support=None,
                  nonnegative=False, seed=0, propagation=None):
         if mode not in ENGINE_MODES:
             raise ReconstructionInputError(f"mode must be one of {ENGINE_MODES}; got {mode!r}.")
@@ -118,7 +120,7 @@ class IncrementalEngine:
         self.iterations_per_update = int(iterations_per_update)
         self.time_budget_s = time_budget_s
         self.method = method
-        self.dtype = check_dtype(dtype)
+        self.dtype = working_dtype(dtype, masks)
         self.seed = seed
         m = check_masks(masks)
         # one core: the engine runs beside acquisition, which must never wait
@@ -172,7 +174,7 @@ class IncrementalEngine:
         photons = float(self._sum.sum())
         residuals: list[float] = []
         n = self.iterations_per_update
-        stopper = _s._Stopper(1e-14 if self.dtype == np.complex128 else 3e-7, 0.0)
+        stopper = _s._Stopper(_s.DEFAULT_TOLERANCE[self.dtype], 0.0)
         cons = self._cons
         first = self._x is None
         if first:

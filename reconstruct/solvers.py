@@ -58,6 +58,7 @@ from .metrics import relative_error
 from .validation import (
     ReconstructionInputError,
     check_dtype,
+    working_dtype,
     check_intensities,
     check_masks,
     check_object,
@@ -73,6 +74,13 @@ DEFAULT_ITERATIONS = {"hybrid": 500, "er": 500, "raar": 500, "wf": 2000, "poisso
 # or when RAAR's residual improves by less than 0.1 % over 20 iterations
 # (noisy data at its floor).
 HYBRID_SWITCH_RESIDUAL = 0.02
+# Default tolerance on the relative amplitude residual, per working precision (a few units of
+# rounding of the residual computed in that precision), and the rounding floor under which a
+# residual that no longer improves stops the run as "precision floor".
+DEFAULT_TOLERANCE = {np.dtype(np.complex64): 3e-7, np.dtype(np.complex128): 1e-14}
+PRECISION_FLOOR = {np.dtype(np.complex64): 1e-5, np.dtype(np.complex128): 1e-12}
+# stop reasons that mean "converged" (the others: "iterations", "time budget", "stalled", ...)
+CONVERGED_REASONS = ("tolerance", "converged", "precision floor")
 HYBRID_STALL_FRACTION = 1e-3
 
 
@@ -361,8 +369,14 @@ def spectral_initialization(ws: Workspace, iterations: int = 50, seed: int = 0,
 # ---------------------------------------------------------------------------
 
 class _Stopper:
-    def __init__(self, tol: float, stall_tol: float, window: int = 20):
-        self.tol, self.stall_tol, self.window = tol, stall_tol, window
+    """When to stop: residual <= tol ("tolerance"); residual improving by less than stall_tol
+    over ``window`` iterations ("stalled"); and, when ``floor`` > 0, residual below the rounding
+    floor of the working precision and no longer improving by 1 % over the window
+    ("precision floor": the tolerance cannot be met in this precision, more iterations only
+    spend the budget)."""
+
+    def __init__(self, tol: float, stall_tol: float, window: int = 20, floor: float = 0.0):
+        self.tol, self.stall_tol, self.window, self.floor = tol, stall_tol, window, floor
         self.reason = ""
 
     def done(self, residuals: list) -> bool:
@@ -371,6 +385,10 @@ class _Stopper:
             return False
         if r <= self.tol:
             self.reason = "tolerance"
+            return True
+        if self.floor > 0 and r <= self.floor and len(residuals) > self.window \
+                and residuals[-1 - self.window] - r <= 0.01 * residuals[-1 - self.window]:
+            self.reason = "precision floor"
             return True
         if self.stall_tol > 0 and len(residuals) > self.window:
             prev = residuals[-1 - self.window]
@@ -788,7 +806,7 @@ def _run_poisson(ws, x, n, cons, residuals, stopper, deadline, truth, errors, fl
 
 
 def solve(intensities, masks, *, method: str = "auto", iterations: int | None = None, x0=None,
-          noise_model: str = "amplitude", support=None, nonnegative: bool = False, dtype=np.complex64,
+          noise_model: str = "amplitude", support=None, nonnegative: bool = False, dtype=None,
           tol: float | None = None, stall_tol: float = 0.0, time_budget_s: float | None = None,
           beta: float = 0.9, init_iterations: int = 20, er_warmup: int = 100, truth=None, seed: int = 0,
           fft_backend: str = "auto", propagation=None) -> SolveResult:
@@ -810,10 +828,16 @@ def solve(intensities, masks, *, method: str = "auto", iterations: int | None = 
         Poisson-likelihood method under "auto"), "gaussian" (Gaussian
         intensity noise: selects Wirtinger flow under "auto").
     support, nonnegative : optional constraints.
-    dtype : complex64 (default, fast; relative errors down to ~1e-6) or
-        complex128 (for 1e-10 and below).
+    dtype : None (default: the precision of the inputs, ``validation.working_dtype``:
+        complex64 when the intensities and masks are single precision, e.g. float32
+        frames with complex64 masks; complex128 when either is double), or
+        complex64 (fast; relative errors down to ~1e-6) / complex128 (1e-10 and below)
+        to choose.
+    iterations : a budget, not a target: the run stops earlier when ``tol`` is met,
+        when the residual sits at the rounding floor of the precision in use, or when
+        ``stall_tol`` / ``time_budget_s`` say so; ``result.stop_reason`` says which.
     tol : stop when the relative amplitude residual falls below this
-        (default: 1e-14 for complex128, 3e-7 for complex64).
+        (default ``DEFAULT_TOLERANCE``: 1e-14 for complex128, 3e-7 for complex64).
     stall_tol : if > 0, stop when the residual improves by less than this
         fraction over 20 iterations (useful on noisy data).
     time_budget_s : wall-clock cap on the iterations.
@@ -835,7 +859,7 @@ def solve(intensities, masks, *, method: str = "auto", iterations: int | None = 
         raise ReconstructionInputError(f"unknown method {method!r}; choose one of {METHODS}.")
     if noise_model not in NOISE_MODELS:
         raise ReconstructionInputError(f"unknown noise_model {noise_model!r}; choose one of {NOISE_MODELS}.")
-    dt = check_dtype(dtype)
+    dt = working_dtype(dtype, intensities, masks)
     m = check_masks(masks)
     if method == "auto":
         method = {"poisson": "poisson", "gaussian": "wf"}.get(noise_model, default_method(m.shape[0]))
@@ -848,7 +872,7 @@ def solve(intensities, masks, *, method: str = "auto", iterations: int | None = 
     if int(iterations) < 0:
         raise ReconstructionInputError(f"iterations must be >= 0; got {iterations}.")
     if tol is None:
-        tol = 1e-14 if dt == np.complex128 else 3e-7
+        tol = DEFAULT_TOLERANCE[dt]
     if x0 is None:
         x = spectral_initialization(ws, init_iterations, seed)
     else:
@@ -858,7 +882,7 @@ def solve(intensities, masks, *, method: str = "auto", iterations: int | None = 
     truth_arr = None if truth is None else check_object(truth, m.shape[1:], name="truth")
     residuals: list[float] = []
     errors: list[float] = []
-    stopper = _Stopper(tol, stall_tol)
+    stopper = _Stopper(tol, stall_tol, floor=PRECISION_FLOOR[dt])
     deadline = None if time_budget_s is None else t_start + float(time_budget_s)
     args = (ws, x, int(iterations), cons, residuals, stopper, deadline, truth_arr, errors)
     if method == "hybrid":
@@ -880,8 +904,17 @@ def solve(intensities, masks, *, method: str = "auto", iterations: int | None = 
     x *= ws.lit
     if not np.all(np.isfinite(x)):
         raise FloatingPointError(f"solver {method!r} diverged (non-finite estimate); try method='er'.")
-    converged = stopper.reason in ("tolerance", "converged")
     return SolveResult(estimate=x, residuals=np.asarray(residuals), method=method, iterations=it,
-                       converged=converged, elapsed_s=time.perf_counter() - t_start,
+                       converged=stopper.reason in CONVERGED_REASONS, elapsed_s=time.perf_counter() - t_start,
                        errors=np.asarray(errors) if truth is not None else None,
-                       stop_reason=stopper.reason or "iterations")
+                       stop_reason=stop_reason(stopper.reason, it, iterations, deadline))
+
+
+def stop_reason(reason: str, done: int, budget: int, deadline) -> str:
+    """Why a run stopped, in words: the stopper's reason, else "time budget" when the deadline
+    passed, else "iterations" (the budget was used up)."""
+    if reason and reason != "switch":
+        return reason
+    if deadline is not None and time.perf_counter() >= deadline and done < budget:
+        return "time budget"
+    return "iterations"

@@ -30,6 +30,7 @@ __all__ = [
     "check_intensities",
     "check_object",
     "check_dtype",
+    "working_dtype",
 ]
 
 
@@ -60,6 +61,32 @@ def check_dtype(dtype) -> np.dtype:
             "or numpy.complex128 (for errors below ~1e-6)."
         )
     return dt
+
+
+def working_dtype(dtype, *inputs) -> np.dtype:
+    """The complex dtype to compute in: ``dtype`` when given, else the precision of the inputs.
+
+    Precision follows the input, as numpy's own functions do: the working dtype is numpy's
+    result type of the inputs' dtypes and complex64 (``numpy.result_type``), so float32 frames
+    with complex64 masks compute in complex64 and anything in double precision (float64
+    frames, complex128 masks, Python lists) computes in complex128. Integer counts follow
+    numpy's promotion too (int16 with complex64 stays complex64, int64 goes to complex128).
+    Wider types (longdouble) compute in complex128, the widest supported.
+    """
+    if dtype is not None:
+        return check_dtype(dtype)
+    kinds = []
+    for a in inputs:
+        if a is None:
+            continue
+        dt = getattr(a, "dtype", None)
+        if dt is None:
+            dt = np.asarray(a).dtype
+        if dt == bool or not np.issubdtype(dt, np.number):
+            continue
+        kinds.append(dt)
+    rt = np.result_type(np.complex64, *kinds)
+    return np.dtype(np.complex64) if rt == np.complex64 else np.dtype(np.complex128)
 
 
 def check_masks(masks, *, warn_k1: bool = True) -> np.ndarray:
