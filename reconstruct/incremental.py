@@ -40,7 +40,7 @@ import numpy as np
 
 from . import solvers as _s
 from .bounds import shot_noise_relative_error
-from .validation import ReconstructionInputError, check_intensities, check_masks, working_dtype
+from .validation import ReconstructionInputError, check_intensities, check_masks, warn_single_pattern, working_dtype
 
 __all__ = ["IncrementalEngine", "EngineUpdate", "ENGINE_MODES", "update_method"]
 
@@ -122,7 +122,9 @@ class IncrementalEngine:
         self.method = method
         self.dtype = working_dtype(dtype, masks)
         self.seed = seed
-        m = check_masks(masks)
+        m = check_masks(masks, warn_k1=False)
+        if m.shape[0] == 1 and method not in ("auto", "hio") and support is None:
+            warn_single_pattern()
         # one core: the engine runs beside acquisition, which must never wait
         # for it (the 256x256, K = 8 update target is set for one core too)
         self._ws = _s.Workspace(m, self.dtype, fft_backend=_s._single_thread_backend(m.shape, self.dtype),
@@ -131,6 +133,7 @@ class IncrementalEngine:
         self._cons = _s._Constraints(support, nonnegative, m.shape[1:], self.dtype)
         lit = self._ws.lit if self._cons.support is None else (self._ws.lit & (self._cons.support > 0))
         self.pixels = int(np.count_nonzero(lit))
+        self._given_support = None if self._cons.support is None else self._cons.support > 0
         self.reset()
 
     # ------------------------------------------------------------------
@@ -141,6 +144,7 @@ class IncrementalEngine:
         self._count = 0
         self._recent: collections.deque = collections.deque()
         self.updates = 0
+        self._hio_support = getattr(self, "_given_support", None)
 
     @property
     def estimate(self) -> np.ndarray | None:
@@ -177,16 +181,25 @@ class IncrementalEngine:
         stopper = _s._Stopper(_s.DEFAULT_TOLERANCE[self.dtype], 0.0)
         cons = self._cons
         first = self._x is None
-        if first:
+        method = update_method(self.method, self.shape[0], warm_start=not first,
+                               accumulating=self.mode == "accumulate")
+        if first and method == "hio":
+            x = None  # HIO starts from random phases (hio._random_start)
+        elif first:
             x = _s.spectral_initialization(ws, SPECTRAL_START_ITERATIONS, self.seed)
             if cons.active:
                 cons(x)
         else:
             x = self._x
-        method = update_method(self.method, self.shape[0], warm_start=not first,
-                               accumulating=self.mode == "accumulate")
         args = (ws, x, n, cons, residuals, stopper, deadline, None, [])
-        if method == "hybrid":
+        if method == "hio":  # one pattern: the support found by the first update is kept (reconstruct/hio.py)
+            from . import hio
+
+            out = hio.run_hio(ws, x, n, self._hio_support, cons.nonnegative, residuals, stopper, deadline, None,
+                              [], seed=self.seed, single_pattern=self.shape[0] == 1)
+            self._hio_support = out.support
+            x, it = out.estimate, out.iterations
+        elif method == "hybrid":
             x, it = _s._run_hybrid(*args)
         elif method == "er":
             x, it = _s._run_er(*args)

@@ -57,6 +57,7 @@ from .metrics import norm as _norm
 from .metrics import relative_error
 from .validation import (
     ReconstructionInputError,
+    warn_single_pattern,
     check_dtype,
     working_dtype,
     check_intensities,
@@ -66,9 +67,9 @@ from .validation import (
 
 __all__ = ["solve", "SolveResult", "spectral_initialization", "METHODS", "Workspace", "default_method"]
 
-METHODS = ("auto", "hybrid", "er", "raar", "wf", "poisson")
+METHODS = ("auto", "hybrid", "er", "raar", "wf", "poisson", "hio")
 NOISE_MODELS = ("amplitude", "poisson", "gaussian")
-DEFAULT_ITERATIONS = {"hybrid": 500, "er": 500, "raar": 500, "wf": 2000, "poisson": 200}
+DEFAULT_ITERATIONS = {"hybrid": 500, "er": 500, "raar": 500, "wf": 2000, "poisson": 200, "hio": 8000}
 # hybrid: leave RAAR for ER once the relative amplitude residual is below
 # 2 % (inside ER's basin: about 25 iterations for K = 8 on a natural image),
 # or when RAAR's residual improves by less than 0.1 % over 20 iterations
@@ -544,6 +545,8 @@ def default_method(mask_count: int) -> str:
     stagnates, RAAR does not (64x64 objects, octanary masks: K = 3 needs RAAR;
     K = 4: RAAR 320 iterations to 1e-14, hybrid 370, ER 650-950).
     """
+    if mask_count == 1:
+        return "hio"  # one pattern: HIO with a support (shrink-wrapped when none is given)
     return "raar" if mask_count <= 4 else "hybrid"
 
 
@@ -860,9 +863,11 @@ def solve(intensities, masks, *, method: str = "auto", iterations: int | None = 
     if noise_model not in NOISE_MODELS:
         raise ReconstructionInputError(f"unknown noise_model {noise_model!r}; choose one of {NOISE_MODELS}.")
     dt = working_dtype(dtype, intensities, masks)
-    m = check_masks(masks)
+    m = check_masks(masks, warn_k1=False)
     if method == "auto":
         method = {"poisson": "poisson", "gaussian": "wf"}.get(noise_model, default_method(m.shape[0]))
+    if m.shape[0] == 1 and method != "hio" and support is None:
+        warn_single_pattern()
     y = check_intensities(intensities, m.shape)
     ws = Workspace(m, dt, fft_backend, propagation=propagation)
     ws.set_intensities(y)
@@ -873,11 +878,13 @@ def solve(intensities, masks, *, method: str = "auto", iterations: int | None = 
         raise ReconstructionInputError(f"iterations must be >= 0; got {iterations}.")
     if tol is None:
         tol = DEFAULT_TOLERANCE[dt]
-    if x0 is None:
+    if x0 is None and method == "hio":
+        x = None  # HIO starts from random phases on the measured magnitudes (hio._random_start)
+    elif x0 is None:
         x = spectral_initialization(ws, init_iterations, seed)
     else:
         x = check_object(x0, m.shape[1:], name="x0").astype(dt)
-    if cons.active:
+    if cons.active and x is not None:
         cons(x)
     truth_arr = None if truth is None else check_object(truth, m.shape[1:], name="truth")
     residuals: list[float] = []
@@ -885,7 +892,14 @@ def solve(intensities, masks, *, method: str = "auto", iterations: int | None = 
     stopper = _Stopper(tol, stall_tol, floor=PRECISION_FLOOR[dt])
     deadline = None if time_budget_s is None else t_start + float(time_budget_s)
     args = (ws, x, int(iterations), cons, residuals, stopper, deadline, truth_arr, errors)
-    if method == "hybrid":
+    if method == "hio":  # Fienup's HIO with a (given or shrink-wrapped) support: reconstruct/hio.py
+        from . import hio
+
+        out = hio.run_hio(ws, x0 if x0 is None else x, int(iterations), support, nonnegative, residuals, stopper,
+                          deadline, truth_arr, errors, hio.HIOSettings(beta=beta), seed=seed,
+                          single_pattern=m.shape[0] == 1)
+        x, it = out.estimate, out.iterations
+    elif method == "hybrid":
         x, it = _run_hybrid(*args, beta=beta)
     elif method == "er":
         x, it = _run_er(*args)

@@ -31,6 +31,7 @@ __all__ = [
     "check_object",
     "check_dtype",
     "working_dtype",
+    "warn_single_pattern",
 ]
 
 
@@ -128,13 +129,19 @@ def check_masks(masks, *, warn_k1: bool = True) -> np.ndarray:
             stacklevel=3,
         )
     if warn_k1 and m.shape[0] == 1:
-        warnings.warn(
-            "K = 1 mask: phase retrieval from a single coded pattern is not uniquely solvable "
-            "(twin-image and shift ambiguities); use K >= 4 (K = 6-8 octanary masks recover generic objects).",
-            NotUniquelySolvableWarning,
-            stacklevel=3,
-        )
+        warn_single_pattern(stacklevel=4)
     return m
+
+
+def warn_single_pattern(stacklevel: int = 3) -> None:
+    """``NotUniquelySolvableWarning`` for K = 1 with a method other than HIO."""
+    warnings.warn(
+        "K = 1 mask: phase retrieval from a single pattern is not uniquely solvable without a support "
+        "(twin-image and shift ambiguities): use method='hio' (support given or shrink-wrapped, pattern "
+        "oversampled 2x), or K >= 4 masks (K = 6-8 octanary masks recover generic objects).",
+        NotUniquelySolvableWarning,
+        stacklevel=stacklevel,
+    )
 
 
 def check_intensities(intensities, mask_shape: tuple[int, int, int], *, dtype=np.float64) -> np.ndarray:
