@@ -103,7 +103,8 @@ def autocorrelation(intensities) -> np.ndarray:
 def autocorrelation_support(intensities, *, threshold: float = 0.04, sigma_px: float = 1.0) -> tuple[np.ndarray, tuple[int, int]]:
     """First support from the data: the autocorrelation, blurred by ``sigma_px``, above
     ``threshold`` x its maximum. Returns (support, estimated object extent (rows, cols)),
-    the extent being half the autocorrelation's plus one pixel."""
+    the extent being half the autocorrelation's plus one pixel (the whole grid when the
+    autocorrelation fills it: aliased, under-sampled)."""
     from scipy.ndimage import gaussian_filter
 
     ac = autocorrelation(intensities)
@@ -111,7 +112,10 @@ def autocorrelation_support(intensities, *, threshold: float = 0.04, sigma_px: f
         ac = gaussian_filter(ac, sigma_px, mode="wrap")
     s = ac > threshold * float(ac.max())
     h, w = support_extent(s)
-    return s, ((h + 1) // 2, (w + 1) // 2)
+    H, W = s.shape
+    # an autocorrelation that fills the grid in a direction is aliased: the object spans at least half
+    # the grid there (taken as all of it, so the oversampling check warns)
+    return s, (H if h >= H else (h + 1) // 2, W if w >= W else (w + 1) // 2)
 
 
 def shrinkwrap(estimate, sigma_px: float, threshold: float = 0.2) -> np.ndarray:
