@@ -812,7 +812,8 @@ def solve(intensities, masks, *, method: str = "auto", iterations: int | None = 
           noise_model: str = "amplitude", support=None, nonnegative: bool = False, dtype=None,
           tol: float | None = None, stall_tol: float = 0.0, time_budget_s: float | None = None,
           beta: float = 0.9, init_iterations: int = 20, er_warmup: int = 100, truth=None, seed: int = 0,
-          fft_backend: str = "auto", propagation=None) -> SolveResult:
+          fft_backend: str = "auto", propagation=None, prior: str | None = None,
+          prior_weight: float | None = None) -> SolveResult:
     """Recover x from y_k = |F(m_k x)|^2.
 
     Parameters
@@ -854,6 +855,9 @@ def solve(intensities, masks, *, method: str = "auto", iterations: int | None = 
     propagation : None (far field, the default) or a
         ``propagation.NearField(wavelength_m, pixel_pitch_m, distance_m)``
         for a camera in the near field (angular-spectrum model).
+    prior : None, or "tv" (total variation of the field, i.e. of amplitude and phase, added to the
+        Poisson likelihood: for low-dose data; implies method "poisson"; ``reconstruct/priors.py``).
+    prior_weight : the prior's weight lambda; None = chosen by the discrepancy principle.
     truth : optional true object; then ``result.errors`` tracks the
         relative error per iteration (costs time; for tests and benchmarks).
     """
@@ -864,6 +868,17 @@ def solve(intensities, masks, *, method: str = "auto", iterations: int | None = 
         raise ReconstructionInputError(f"unknown noise_model {noise_model!r}; choose one of {NOISE_MODELS}.")
     dt = working_dtype(dtype, intensities, masks)
     m = check_masks(masks, warn_k1=False)
+    if prior not in (None, "tv"):
+        raise ReconstructionInputError(f"unknown prior {prior!r}; choose None or 'tv'.")
+    if prior is not None:
+        if method not in ("auto", "poisson"):
+            raise ReconstructionInputError(f"prior={prior!r} regularises the Poisson likelihood: use method='poisson' "
+                                           f"(or 'auto'), not {method!r}.")
+        if nonnegative:
+            raise ReconstructionInputError("prior='tv' does not take nonnegative=True; use a support, or no prior.")
+        if prior_weight is not None and not (np.isfinite(prior_weight) and prior_weight >= 0):
+            raise ReconstructionInputError(f"prior_weight must be a finite number >= 0 or None; got {prior_weight}.")
+        method = "poisson"
     if method == "auto":
         method = {"poisson": "poisson", "gaussian": "wf"}.get(noise_model, default_method(m.shape[0]))
     if m.shape[0] == 1 and method != "hio" and support is None:
@@ -913,7 +928,13 @@ def solve(intensities, masks, *, method: str = "auto", iterations: int | None = 
         if x0 is None and er_warmup > 0:
             warm = _Stopper(tol, 1e-4)
             x, _ = _run_er(ws, x, er_warmup, cons, [], warm, deadline, None, [])
-        x, it = _run_poisson(*args)
+        if prior == "tv":
+            from .priors import run_poisson_tv
+
+            x, it = run_poisson_tv(ws, x, int(iterations), cons, residuals, stopper, deadline, truth_arr, errors,
+                                   weight=prior_weight)
+        else:
+            x, it = _run_poisson(*args)
     x = np.asarray(x, dtype=dt)
     x *= ws.lit
     if not np.all(np.isfinite(x)):
