@@ -45,6 +45,7 @@ from . import solvers as _s
 from .ambiguities import relative_error_modulo_ambiguities
 from .metrics import norm as _norm
 from .metrics import relative_error
+from .hio_kernels import constrained, hio_update
 from .support import autocorrelation_support, check_oversampling, check_support, reduced_support, shrinkwrap
 
 __all__ = ["HIOSettings", "HIOOutcome", "run_hio"]
@@ -98,25 +99,16 @@ def _random_start(ws, support, rng) -> np.ndarray:
     return x
 
 
-def _apply_constraints(p, support, nonneg):
-    """P_C(p) and the mask of pixels where p satisfies the constraints."""
-    if nonneg:
-        good = support & (p.real >= 0)
-        est = np.where(good, p.real, 0).astype(p.dtype)
-    else:
-        good = support
-        est = np.where(good, p, 0).astype(p.dtype)
-    return est, good
-
-
 def run_hio(ws, x0, n: int, support, nonnegative: bool, residuals: list, stopper, deadline, truth, errors,
-            settings: HIOSettings = HIOSettings(), seed: int = 0, single_pattern: bool = True) -> HIOOutcome:
+            settings: HIOSettings = HIOSettings(), seed: int = 0, single_pattern: bool = True,
+            check_sampling: bool = True) -> HIOOutcome:
     """HIO attempts within a budget of ``n`` iterations in all (see the module docstring).
 
     ws : a ``solvers.Workspace`` with the intensities set. x0 : first start or None (random).
     support : boolean (H, W) (fixed unless settings.shrinkwrap) or None (estimated, shrink-wrapped).
     truth : optional; ``errors`` then gets the error per iteration (modulo twin, shift and global
-    phase when ``single_pattern``, else modulo global phase).
+    phase when ``single_pattern``, else modulo global phase). check_sampling=False skips the
+    oversampling check of a given support (the engine's own shrink-wrapped one from a previous update).
     """
     settings.validate()
     shape = ws.shape[1:]
@@ -127,7 +119,8 @@ def run_hio(ws, x0, n: int, support, nonnegative: bool, residuals: list, stopper
         wrap = True if settings.shrinkwrap is None else settings.shrinkwrap
     else:
         s0 = check_support(support, shape)
-        check_oversampling(s0)
+        if check_sampling:
+            check_oversampling(s0)
         wrap = False if settings.shrinkwrap is None else settings.shrinkwrap
     err_fn = relative_error_modulo_ambiguities if single_pattern else relative_error
     beta = float(settings.beta)
@@ -148,32 +141,29 @@ def run_hio(ws, x0, n: int, support, nonnegative: bool, residuals: list, stopper
         S_full = S
         restart = False
         it = 0
+        Sr = S.astype(ws.real_dtype)
         for it in range(1, hio_budget + 1):
             p, _ = _s._er_step(ws, x)
-            est, good = _apply_constraints(p, S, nonnegative)
-            viol = p - est
-            E = float(np.sqrt(np.sum(wr * (viol.real ** 2 + viol.imag ** 2), dtype=np.float64))) / ws.norm_sqrty
+            viol2 = hio_update(p, x, Sr, wr, beta, nonnegative)  # x <- HIO(x), in place
+            E = float(np.sqrt(viol2)) / ws.norm_sqrty
             residuals.append(E)
+            need_est = truth is not None or (wrap and it % settings.shrinkwrap_every == 0 and twin_left == 0)
+            est = constrained(p, Sr, nonnegative) if need_est else None
             if truth is not None:
                 errors.append(err_fn(truth, est))
             if stopper.done(residuals):
-                x = est
+                x = est if est is not None else constrained(p, Sr, nonnegative)
                 break
-            # HIO update
-            if nonnegative:
-                xr = np.where(good, p.real, x.real - beta * p.real)
-                xi = x.imag - beta * p.imag
-                x = (xr + 1j * xi).astype(ws.dtype)
-            else:
-                x = np.where(good, p, x - beta * p).astype(ws.dtype)
             if wrap and it % settings.shrinkwrap_every == 0 and twin_left == 0:
                 S_full = shrinkwrap(est, sigma, settings.shrinkwrap_threshold)
                 S = S_full
+                Sr = S.astype(ws.real_dtype)
                 sigma = max(settings.sigma_min_px, sigma * settings.sigma_decay)
             if twin_left:
                 twin_left -= 1
                 if twin_left == 0:
                     S = S_full
+                    Sr = S.astype(ws.real_dtype)
             window_best = min(window_best, E)
             if it % settings.check_every == 0 and not (wrap and sigma > settings.sigma_min_px):
                 stagnant = window_best > 0.9 * prev_best and window_best > settings.stagnation_level
@@ -181,6 +171,7 @@ def run_hio(ws, x0, n: int, support, nonnegative: bool, residuals: list, stopper
                     twin_tried = True
                     twin_total += 1
                     S = reduced_support(S_full)
+                    Sr = S.astype(ws.real_dtype)
                     twin_left = settings.twin_iterations
                 elif stagnant:
                     restart = attempts <= settings.restarts
@@ -190,7 +181,7 @@ def run_hio(ws, x0, n: int, support, nonnegative: bool, residuals: list, stopper
             if deadline is not None and time.perf_counter() >= deadline:
                 break
         used += it
-        x_est = _apply_constraints(_s._er_step(ws, x)[0], S_full, nonnegative)[0] if stopper.reason == "" else x
+        x_est = constrained(_s._er_step(ws, x)[0], S_full, nonnegative) if stopper.reason == "" else x
         # ER polish with the final support
         cons = _s._Constraints(S_full, nonnegative, shape, ws.dtype)
         n_er = min(settings.er_iterations, max(0, n - used))

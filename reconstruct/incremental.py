@@ -196,7 +196,8 @@ class IncrementalEngine:
             from . import hio
 
             out = hio.run_hio(ws, x, n, self._hio_support, cons.nonnegative, residuals, stopper, deadline, None,
-                              [], seed=self.seed, single_pattern=self.shape[0] == 1)
+                              [], seed=self.seed, single_pattern=self.shape[0] == 1,
+                              check_sampling=self._hio_support is self._given_support)
             self._hio_support = out.support
             x, it = out.estimate, out.iterations
         elif method == "hybrid":

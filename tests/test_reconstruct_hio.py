@@ -172,3 +172,25 @@ def test_engine_runs_hio_for_one_pattern():
     eng = IncrementalEngine(ONE, support=x > 0, nonnegative=True, iterations_per_update=4000)
     u = eng.update(pattern(x)[None])
     assert relative_error_modulo_ambiguities(x, u.estimate) <= 1e-3
+
+
+@pytest.mark.parametrize("dtype", [np.complex64, np.complex128])
+@pytest.mark.parametrize("nonnegative", [True, False])
+def test_fused_hio_update_matches_its_numpy_twin(dtype, nonnegative):
+    from maskrun.reconstruct import kernels
+    from maskrun.reconstruct.hio_kernels import _np_hio_update, hio_update
+
+    if not kernels.accelerated():
+        pytest.skip("numba kernels not in use here")
+    rng = np.random.default_rng(3)
+    rdt = np.float32 if dtype == np.complex64 else np.float64
+    p = (rng.standard_normal((16, 16)) + 1j * rng.standard_normal((16, 16))).astype(dtype)
+    x = (rng.standard_normal((16, 16)) + 1j * rng.standard_normal((16, 16))).astype(dtype)
+    sup = (rng.random((16, 16)) > 0.5).astype(rdt)
+    w = rng.random((16, 16)).astype(rdt)
+    x1, x2 = x.copy(), x.copy()
+    e1 = hio_update(p, x1, sup, w, 0.9, nonnegative)
+    e2 = _np_hio_update(p, x2, sup, w, 0.9, nonnegative)
+    tol = 1e-5 if dtype == np.complex64 else 1e-12
+    np.testing.assert_allclose(x1, x2, rtol=tol, atol=tol)
+    assert e1 == pytest.approx(e2, rel=tol)
