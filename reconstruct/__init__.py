@@ -39,6 +39,15 @@ everything; it runs ``"hybrid"`` (``"raar"`` when K <= 4):
   (``noise_model="gaussian"`` selects it). Needs ~5x more iterations
   (527 vs 103 to 1e-10 at 256x256, K = 8) and is inefficient on shot noise
   (MSE/CRB = 1.7).
+* ``"hio"`` (default for K = 1): Fienup's hybrid input-output for one
+  far-field pattern of an isolated object (or a few masks), with a support
+  (given, or from the autocorrelation refined by shrink-wrap) and optional
+  non-negativity; oversampling check, twin-image remedy and restarts on
+  stagnation (``hio``, ``support``); compare with
+  ``ambiguities.relative_error_modulo_ambiguities`` (shift, twin, phase).
+* ``prior="tv"`` with ``"poisson"``: total-variation regularised Poisson
+  likelihood for low-dose data, weight by the discrepancy principle
+  (``priors``). See docs/reconstruction-methods.md for the low-dose table.
 * ``"poisson"``: Poisson maximum likelihood by L-BFGS, started from ER
   (``noise_model="poisson"`` selects it). Use for shot-noise-limited data
   when the last factor of precision matters: its MSE approaches the
