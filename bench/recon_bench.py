@@ -15,6 +15,8 @@ Run:  .venv/bin/python bench/recon_bench.py   (about 4-5 minutes on 2 cores)
     per pixel, 30 noise draws).
 (d) one incremental update of a 256x256, K = 8 frame set on one core, and
     the demo problem (128x128, 1e7 photons per frame, 3 passes).
+(h) HIO on one pattern: time per iteration against its 2-FFT floor (section h alone:
+    ``bench/recon_bench.py h``).
 
 Timings are minima over repeats (the machine may be shared).
 """
@@ -187,7 +189,7 @@ def section_c(trials: int = 30) -> None:
         sq = []
         t0 = time.perf_counter()
         for _ in range(trials):
-            est = solve(rng.poisson(y0), m, method=method).estimate
+            est = solve(rng.poisson(y0), m, method=method, dtype=np.complex64).estimate
             sq.append(np.sum(np.abs(xs - align_global_phase(xs, est)) ** 2))
         sq = np.array(sq)
         ratio = sq.mean() / crb.total_mse
@@ -205,7 +207,7 @@ def section_d() -> None:
     y = forward(x, m)
     scale = 1e7 / (y.sum() / K)
     rng = np.random.default_rng(0)
-    eng = IncrementalEngine(m)  # defaults: accumulate, 50 iterations, complex64
+    eng = IncrementalEngine(m, dtype=np.complex64)  # as the daemon: accumulate, 50 iterations, complex64
     times = []
     for p in range(4):
         u = eng.update(rng.poisson(y * scale).astype(np.float32))
@@ -220,7 +222,7 @@ def section_d() -> None:
     m = octanary_masks(K, (n, n), seed=5)
     y = forward(x, m)
     scale = 1e7 / (y.sum() / K)
-    eng = IncrementalEngine(m)
+    eng = IncrementalEngine(m, dtype=np.complex64)
     total = 0.0
     errs = []
     for p in range(3):
@@ -231,10 +233,41 @@ def section_d() -> None:
           f"total compute {total:.2f} s (need < 5 %)")
 
 
+def section_h(samples: int = 5, iters: int = 100) -> None:
+    """(h) HIO on one pattern (K = 1): time per iteration / its 2-FFT floor (one forward and one
+    inverse FFT of the grid), fixed support and with shrink-wrap (every 20 iterations)."""
+    from maskrun.reconstruct.hio import HIOSettings, run_hio
+
+    print("(h) HIO, one pattern (K = 1): one iteration / the 2-FFT floor; object half the grid, real >= 0")
+    for n in (256, 512):
+        for dtype in (np.complex64, np.complex128):
+            obj = resize(skdata.camera().astype(float) / 255.0, (n // 2, n // 2), anti_aliasing=True)
+            x = np.zeros((n, n))
+            x[n // 4: n // 4 + n // 2, n // 4: n // 4 + n // 2] = obj
+            one = np.ones((1, n, n), dtype)
+            ws = S.Workspace(one, dtype)
+            ws.set_intensities(np.abs(np.fft.fft2(x, norm="ortho"))[None] ** 2)
+            buf = (np.random.default_rng(0).standard_normal(ws.shape) + 0j).astype(dtype)
+            line = []
+            for label, support, wrap in (("fixed support", x > 0, False), ("shrink-wrap", None, True)):
+                settings = HIOSettings(shrinkwrap=wrap, er_iterations=0, restarts=0, check_every=10 ** 9)
+                ratios, t_min, fl_min = [], np.inf, np.inf
+                for _ in range(samples):
+                    t0 = time.perf_counter()
+                    run_hio(ws, None, iters, support, True, [], S._Stopper(-1.0, 0.0), None, None, [], settings)
+                    t_it = (time.perf_counter() - t0) / iters
+                    t_fl = min(floor_s(ws, buf) for _ in range(iters))
+                    ratios.append(t_it / t_fl)
+                    t_min, fl_min = min(t_min, t_it), min(fl_min, t_fl)
+                line.append(f"{label} {np.median(ratios):.2f} (of minima {t_min / fl_min:.2f}; {t_min * 1e3:.2f} ms)")
+            print(f"  {n}x{n} {np.dtype(dtype).name:10s} [FFT {ws.plan.backend}]: " + "; ".join(line))
+    print("  (per-call set-up included: the random start and, with shrink-wrap, the autocorrelation support)")
+
+
 def main(argv: list[str]) -> None:
-    which = set(argv) or {"a", "b", "c", "d"}
+    which = set(argv) or {"a", "b", "c", "d", "h"}
     print(f"numpy {np.__version__}; FFT backend and thread split are measured per shape and cached")
-    for name, fn in (("a", section_a), ("b", section_b), ("c", section_c), ("d", section_d)):
+    for name, fn in (("a", section_a), ("b", section_b), ("c", section_c), ("d", section_d), ("h", section_h)):
         if name in which:
             t0 = time.perf_counter()
             fn()

@@ -119,7 +119,8 @@ class _FollowReconstructor:
         from maskrun.reconstruct import IncrementalEngine
 
         self.engine = IncrementalEngine(masks.astype(np.complex64), mode="follow", window=1,
-                                        iterations_per_update=iterations, time_budget_s=time_budget_s)
+                                        iterations_per_update=iterations, time_budget_s=time_budget_s,
+                                        dtype=np.complex64)
         self.pub = publisher
         self.fig = figures
         self.truth_fn = truth_fn

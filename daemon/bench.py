@@ -242,9 +242,12 @@ def _load_profile(cfg: BenchConfig):
 
 def _simulated_optics(cfg: BenchConfig, masks: np.ndarray, sensor_shape):
     from maskrun.simulators.optics import SimulatedOptics
-    from maskrun.simulators.sample import phase_target
+    from maskrun.simulators.sample import isolated_amplitude_target, phase_target
 
-    sample = phase_target(tuple(cfg.grid.shape), wavelength_m=cfg.laser.wavelength_m)
+    if cfg.simulation.sample == "isolated_amplitude_target":  # single-pattern benches (no modulator pattern)
+        sample = isolated_amplitude_target(tuple(cfg.grid.shape))
+    else:
+        sample = phase_target(tuple(cfg.grid.shape), wavelength_m=cfg.laser.wavelength_m)
     optics = SimulatedOptics(sample.field, masks, cfg.simulation.photon_rate_per_s, sensor_shape,
                              mask_offset_px=cfg.simulation.modulator_offset_px)
     return optics, optics.truth_field()

@@ -18,7 +18,7 @@ def register(sub) -> None:
     p = sub.add_parser("reconstruct", help="reconstruct every complete frame set of stored runs (offline; "
                        "local processes or a Dask cluster)")
     p.add_argument("runs", nargs="+", metavar="RUN.h5", help="run files (read only)")
-    p.add_argument("--method", default="auto", choices=METHODS, help="phase-retrieval method (default: auto = hybrid)")
+    p.add_argument("--method", default="auto", choices=METHODS, help="phase-retrieval method (default: auto = hio for K = 1, raar for K <= 4, else hybrid)")
     p.add_argument("--iterations", type=int, default=None, help="maximum iterations per frame set (default: the method's)")
     p.add_argument("--mode", default="each", choices=("each", "cumulative"),
                    help="each: every frame set alone; cumulative: pass p from the mean of frame sets 0..p")

@@ -78,7 +78,9 @@ class GridConfig(_Table):
 class MaskConfig(_Table):
     """The mask set shown by the modulator."""
 
-    family: Literal["octanary", "random_phase", "quantized_phase", "binary_amplitude", "file"] = "octanary"
+    family: Literal["octanary", "random_phase", "quantized_phase", "binary_amplitude", "file", "blank"] = Field(
+        "octanary", description="blank: one all-ones mask (count = 1), the plain far-field pattern of a bench "
+        "without a modulator pattern (reconstructed by HIO with a support)")
     count: int = Field(8, description="number of masks K per frame set")
     seed: int = 0
     levels: int = Field(8, ge=2, description="phase levels for quantized_phase")
@@ -95,6 +97,8 @@ class MaskConfig(_Table):
     def _file_needs_path(self):
         if self.family == "file" and not self.path:
             raise ValueError("family = 'file' needs path = '<masks.npy>'")
+        if self.family == "blank" and self.count != 1:
+            raise ValueError("family = 'blank' is one all-ones mask: set count = 1")
         return self
 
 
@@ -176,6 +180,8 @@ class ReconstructionConfig(_Table):
     window: int = Field(1, ge=1)
     iterations_per_update: int = Field(100, ge=1)
     time_budget_s: float | None = Field(None, gt=0)
+    nonnegative: bool = Field(False, description="the object is real and non-negative (an absorbing sample): "
+                              "a constraint for HIO on single patterns; used by 'maskrun reconstruct'")
     local_worker: bool = Field(True, description="start the reconstruction worker on this machine; false: only "
                                "remote workers ('maskrun worker --connect ADDRESS') reconstruct")
     worker_address: str = Field("tcp://127.0.0.1:0", description="frame sets are offered here, estimates come back "
@@ -255,7 +261,9 @@ class FirmwareConfig(_Table):
 class SimulationConfig(_Table):
     """The simulated optical bench (present only when the bench is simulated)."""
 
-    sample: Literal["phase_target"] = "phase_target"
+    sample: Literal["phase_target", "isolated_amplitude_target"] = Field(
+        "phase_target", description="phase_target: the etched plate filling the grid; isolated_amplitude_target: "
+        "an isolated absorbing object for single-pattern benches (masks family 'blank')")
     photon_rate_per_s: float = Field(gt=0, description="incident photons per second on the detector, shutter open")
     seed: int = 0
     firmware: dict[Literal["modulator", "safety"], FirmwareConfig] = Field(default_factory=dict)

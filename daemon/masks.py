@@ -10,7 +10,7 @@ from maskrun import reconstruct as rc
 
 
 def make_masks(family: str, count: int, shape, seed: int = 0, levels: int = 8, path: str | Path | None = None) -> np.ndarray:
-    """The (K, H, W) complex mask set. family: octanary | random_phase | quantized_phase | binary_amplitude | file."""
+    """The (K, H, W) complex mask set. family: octanary | random_phase | quantized_phase | binary_amplitude | file | blank."""
     shape = tuple(int(s) for s in shape)
     if family == "octanary":
         return rc.octanary_masks(count, shape, seed=seed)
@@ -20,6 +20,8 @@ def make_masks(family: str, count: int, shape, seed: int = 0, levels: int = 8, p
         return rc.quantized_phase_masks(count, shape, levels=levels, seed=seed)
     if family == "binary_amplitude":
         return rc.binary_amplitude_masks(count, shape, seed=seed)
+    if family == "blank":  # no modulator pattern: the plain far field
+        return np.ones((count, *shape), dtype=np.complex128)
     if family == "file":
         if path is None:
             raise ValueError("masks family 'file' needs a path")

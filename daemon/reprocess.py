@@ -222,6 +222,7 @@ class _RunContext:
     exposure_s: np.ndarray  # per frame row
     truth: np.ndarray | None
     lit_pixels: int
+    nonnegative: bool = False  # [reconstruction] nonnegative of the stored config (HIO's constraint)
 
 
 _CONTEXTS: dict[tuple, _RunContext] = {}
@@ -244,11 +245,22 @@ def _run_context(path: str) -> _RunContext:
                 exposure_s=rf.frame_info()["exposure_s"].copy(),
                 truth=rf.truth(),
                 lit_pixels=int(np.count_nonzero(np.sum(np.abs(masks.astype(np.complex128)) ** 2, axis=0) > 0)),
+                nonnegative=_stored_nonnegative(rf.config_toml, path),
             )
         if len(_CONTEXTS) > 8:
             _CONTEXTS.clear()
         _CONTEXTS[key] = ctx
     return ctx
+
+
+def _stored_nonnegative(config_toml: str, source: str) -> bool:
+    """``[reconstruction] nonnegative`` of the run's stored config (False when it cannot be read)."""
+    try:
+        from .config import parse_config
+
+        return bool(parse_config(config_toml, source).reconstruction.nonnegative)
+    except Exception:
+        return False
 
 
 _ONE_CORE = False
@@ -289,13 +301,20 @@ def process_frame_set(task: FrameSetTask) -> FrameSetResult:
     exposure_s = float(ctx.exposure_s[task.sets[-1][-1]])
     t0 = time.perf_counter()
     k = ctx.masks.shape[0]
+    # K = 1 (a plain far-field pattern): HIO with a shrink-wrapped support, non-negative when the run's
+    # config says the object is ([reconstruction] nonnegative); other methods take no constraint here
+    nonneg = ctx.nonnegative and opts.resolved_method(k) == "hio"
     res = solve(data, ctx.masks, method=opts.resolved_method(k), iterations=opts.resolved_iterations(k),
-                dtype=opts.dtype, seed=opts.seed, fft_backend=FFT_BACKEND)
+                dtype=opts.dtype, seed=opts.seed, fft_backend=FFT_BACKEND, nonnegative=nonneg)
     elapsed = time.perf_counter() - t0
     scale = 1.0 / float(np.sqrt(ctx.response.quantum_efficiency * exposure_s))
     est = (res.estimate * scale).astype(opts.dtype)
     true_err = float("nan")
-    if ctx.truth is not None:
+    if ctx.truth is not None and k == 1:  # one pattern: the error modulo shift, twin and global phase
+        from maskrun.reconstruct.ambiguities import relative_error_modulo_ambiguities
+
+        true_err = float(relative_error_modulo_ambiguities(ctx.truth, est.astype(np.complex128)))
+    elif ctx.truth is not None:
         true_err = float(relative_error(ctx.truth, est.astype(np.complex128)))
     photons = float(acc.sum())
     return FrameSetResult(

@@ -898,7 +898,12 @@ class Sequencer:
         for hdr, est in got:
             true_err = float("nan")
             if self.bench.truth is not None:
-                true_err = float(relative_error(self.bench.truth, est.astype(np.complex128)))
+                if est.shape != self.bench.truth.shape or self.bench.config.masks.count != 1:
+                    true_err = float(relative_error(self.bench.truth, est.astype(np.complex128)))
+                else:  # one pattern: modulo shift, twin and global phase (reconstruct/ambiguities.py)
+                    from maskrun.reconstruct.ambiguities import relative_error_modulo_ambiguities
+
+                    true_err = relative_error_modulo_ambiguities(self.bench.truth, est.astype(np.complex128))
                 self.true_errors.append(true_err)
             self.store.append_estimate(
                 est,

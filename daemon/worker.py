@@ -137,6 +137,7 @@ class WorkerLoop:
                 iterations_per_update=o.iterations_per_update,
                 time_budget_s=o.time_budget_s,
                 method=o.method,
+                dtype=np.complex64,  # live reconstruction computes in single precision (the frames are float32)
             )
             self._engine_key = key
         return self._engine

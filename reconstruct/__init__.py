@@ -39,6 +39,15 @@ everything; it runs ``"hybrid"`` (``"raar"`` when K <= 4):
   (``noise_model="gaussian"`` selects it). Needs ~5x more iterations
   (527 vs 103 to 1e-10 at 256x256, K = 8) and is inefficient on shot noise
   (MSE/CRB = 1.7).
+* ``"hio"`` (default for K = 1): Fienup's hybrid input-output for one
+  far-field pattern of an isolated object (or a few masks), with a support
+  (given, or from the autocorrelation refined by shrink-wrap) and optional
+  non-negativity; oversampling check, twin-image remedy and restarts on
+  stagnation (``hio``, ``support``); compare with
+  ``ambiguities.relative_error_modulo_ambiguities`` (shift, twin, phase).
+* ``prior="tv"`` with ``"poisson"``: total-variation regularised Poisson
+  likelihood for low-dose data, weight by the discrepancy principle
+  (``priors``). See docs/reconstruction-methods.md for the low-dose table.
 * ``"poisson"``: Poisson maximum likelihood by L-BFGS, started from ER
   (``noise_model="poisson"`` selects it). Use for shot-noise-limited data
   when the last factor of precision matters: its MSE approaches the
@@ -59,9 +68,13 @@ Mask families: ``octanary_masks`` (coded-diffraction plates),
 with a lookup table), ``binary_amplitude_masks`` (DMD), ``load_masks``
 (.npy / .npz).
 
-Precision and speed: ``solve`` and the engine work in complex64 by default
-(errors down to ~1e-6); pass ``dtype=numpy.complex128`` for more digits
-(1e-10 and below). Buffers are preallocated, FFTs batched over the K masks;
+Precision and speed: precision follows the input, as in numpy: ``solve`` and
+the engine compute in complex64 when the frames and masks are single precision
+(float32 frames, complex64 masks: errors down to ~1e-6) and in complex128 when
+either is double (1e-10 and below); ``dtype=`` chooses explicitly (the daemon
+asks for complex64). ``iterations`` is a budget: the default tolerance suits
+the precision in use, and ``SolveResult.stop_reason`` says why a run stopped
+("tolerance", "precision floor", "iterations", "time budget", "stalled"). Buffers are preallocated, FFTs batched over the K masks;
 the FFT backend (numpy.fft or scipy.fft with workers) and the split of the
 masks over threads are measured per problem shape and the fastest is kept
 (``fft`` module, ``solvers.Workspace``). The ``"poisson"`` method computes

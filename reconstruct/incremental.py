@@ -40,7 +40,7 @@ import numpy as np
 
 from . import solvers as _s
 from .bounds import shot_noise_relative_error
-from .validation import ReconstructionInputError, check_dtype, check_intensities, check_masks
+from .validation import ReconstructionInputError, check_intensities, check_masks, warn_single_pattern, working_dtype
 
 __all__ = ["IncrementalEngine", "EngineUpdate", "ENGINE_MODES", "update_method"]
 
@@ -94,14 +94,16 @@ class IncrementalEngine:
     time_budget_s : optional wall-clock cap per update (seconds, > 0).
     method : "auto" (hybrid first, ER polish in accumulate mode), or any
         solver method name ("hybrid", "er", "raar", "wf", "poisson").
-    dtype : complex64 (default, fast) or complex128.
+    dtype : None (default: the precision of the masks, as ``solve`` follows its inputs:
+        complex64 masks compute in complex64, complex128 masks in complex128), or
+        complex64 / complex128 to choose (the daemon's worker asks for complex64).
     support, nonnegative : optional constraints as in ``solve``.
     seed : seed of the spectral initialization.
     propagation : None (far field) or ``NearField(...)`` (camera in the near field).
     """
 
     def __init__(self, masks, *, mode="accumulate", window=1, iterations_per_update=50,
-                 time_budget_s=None, method="auto", dtype=np.complex64, support=None,
+                 time_budget_s=None, method="auto", dtype=None, support=None,
                  nonnegative=False, seed=0, propagation=None):
         if mode not in ENGINE_MODES:
             raise ReconstructionInputError(f"mode must be one of {ENGINE_MODES}; got {mode!r}.")
@@ -118,9 +120,11 @@ class IncrementalEngine:
         self.iterations_per_update = int(iterations_per_update)
         self.time_budget_s = time_budget_s
         self.method = method
-        self.dtype = check_dtype(dtype)
+        self.dtype = working_dtype(dtype, masks)
         self.seed = seed
-        m = check_masks(masks)
+        m = check_masks(masks, warn_k1=False)
+        if m.shape[0] == 1 and method not in ("auto", "hio") and support is None:
+            warn_single_pattern()
         # one core: the engine runs beside acquisition, which must never wait
         # for it (the 256x256, K = 8 update target is set for one core too)
         self._ws = _s.Workspace(m, self.dtype, fft_backend=_s._single_thread_backend(m.shape, self.dtype),
@@ -129,6 +133,7 @@ class IncrementalEngine:
         self._cons = _s._Constraints(support, nonnegative, m.shape[1:], self.dtype)
         lit = self._ws.lit if self._cons.support is None else (self._ws.lit & (self._cons.support > 0))
         self.pixels = int(np.count_nonzero(lit))
+        self._given_support = None if self._cons.support is None else self._cons.support > 0
         self.reset()
 
     # ------------------------------------------------------------------
@@ -139,6 +144,7 @@ class IncrementalEngine:
         self._count = 0
         self._recent: collections.deque = collections.deque()
         self.updates = 0
+        self._hio_support = getattr(self, "_given_support", None)
 
     @property
     def estimate(self) -> np.ndarray | None:
@@ -172,19 +178,29 @@ class IncrementalEngine:
         photons = float(self._sum.sum())
         residuals: list[float] = []
         n = self.iterations_per_update
-        stopper = _s._Stopper(1e-14 if self.dtype == np.complex128 else 3e-7, 0.0)
+        stopper = _s._Stopper(_s.DEFAULT_TOLERANCE[self.dtype], 0.0)
         cons = self._cons
         first = self._x is None
-        if first:
+        method = update_method(self.method, self.shape[0], warm_start=not first,
+                               accumulating=self.mode == "accumulate")
+        if first and method == "hio":
+            x = None  # HIO starts from random phases (hio._random_start)
+        elif first:
             x = _s.spectral_initialization(ws, SPECTRAL_START_ITERATIONS, self.seed)
             if cons.active:
                 cons(x)
         else:
             x = self._x
-        method = update_method(self.method, self.shape[0], warm_start=not first,
-                               accumulating=self.mode == "accumulate")
         args = (ws, x, n, cons, residuals, stopper, deadline, None, [])
-        if method == "hybrid":
+        if method == "hio":  # one pattern: the support found by the first update is kept (reconstruct/hio.py)
+            from . import hio
+
+            out = hio.run_hio(ws, x, n, self._hio_support, cons.nonnegative, residuals, stopper, deadline, None,
+                              [], seed=self.seed, single_pattern=self.shape[0] == 1,
+                              check_sampling=self._hio_support is self._given_support)
+            self._hio_support = out.support
+            x, it = out.estimate, out.iterations
+        elif method == "hybrid":
             x, it = _s._run_hybrid(*args)
         elif method == "er":
             x, it = _s._run_er(*args)

@@ -57,7 +57,9 @@ from .metrics import norm as _norm
 from .metrics import relative_error
 from .validation import (
     ReconstructionInputError,
+    warn_single_pattern,
     check_dtype,
+    working_dtype,
     check_intensities,
     check_masks,
     check_object,
@@ -65,14 +67,21 @@ from .validation import (
 
 __all__ = ["solve", "SolveResult", "spectral_initialization", "METHODS", "Workspace", "default_method"]
 
-METHODS = ("auto", "hybrid", "er", "raar", "wf", "poisson")
+METHODS = ("auto", "hybrid", "er", "raar", "wf", "poisson", "hio")
 NOISE_MODELS = ("amplitude", "poisson", "gaussian")
-DEFAULT_ITERATIONS = {"hybrid": 500, "er": 500, "raar": 500, "wf": 2000, "poisson": 200}
+DEFAULT_ITERATIONS = {"hybrid": 500, "er": 500, "raar": 500, "wf": 2000, "poisson": 200, "hio": 8000}
 # hybrid: leave RAAR for ER once the relative amplitude residual is below
 # 2 % (inside ER's basin: about 25 iterations for K = 8 on a natural image),
 # or when RAAR's residual improves by less than 0.1 % over 20 iterations
 # (noisy data at its floor).
 HYBRID_SWITCH_RESIDUAL = 0.02
+# Default tolerance on the relative amplitude residual, per working precision (a few units of
+# rounding of the residual computed in that precision), and the rounding floor under which a
+# residual that no longer improves stops the run as "precision floor".
+DEFAULT_TOLERANCE = {np.dtype(np.complex64): 3e-7, np.dtype(np.complex128): 1e-14}
+PRECISION_FLOOR = {np.dtype(np.complex64): 1e-5, np.dtype(np.complex128): 1e-12}
+# stop reasons that mean "converged" (the others: "iterations", "time budget", "stalled", ...)
+CONVERGED_REASONS = ("tolerance", "converged", "precision floor")
 HYBRID_STALL_FRACTION = 1e-3
 
 
@@ -361,8 +370,14 @@ def spectral_initialization(ws: Workspace, iterations: int = 50, seed: int = 0,
 # ---------------------------------------------------------------------------
 
 class _Stopper:
-    def __init__(self, tol: float, stall_tol: float, window: int = 20):
-        self.tol, self.stall_tol, self.window = tol, stall_tol, window
+    """When to stop: residual <= tol ("tolerance"); residual improving by less than stall_tol
+    over ``window`` iterations ("stalled"); and, when ``floor`` > 0, residual below the rounding
+    floor of the working precision and no longer improving by 1 % over the window
+    ("precision floor": the tolerance cannot be met in this precision, more iterations only
+    spend the budget)."""
+
+    def __init__(self, tol: float, stall_tol: float, window: int = 20, floor: float = 0.0):
+        self.tol, self.stall_tol, self.window, self.floor = tol, stall_tol, window, floor
         self.reason = ""
 
     def done(self, residuals: list) -> bool:
@@ -371,6 +386,10 @@ class _Stopper:
             return False
         if r <= self.tol:
             self.reason = "tolerance"
+            return True
+        if self.floor > 0 and r <= self.floor and len(residuals) > self.window \
+                and residuals[-1 - self.window] - r <= 0.01 * residuals[-1 - self.window]:
+            self.reason = "precision floor"
             return True
         if self.stall_tol > 0 and len(residuals) > self.window:
             prev = residuals[-1 - self.window]
@@ -526,6 +545,8 @@ def default_method(mask_count: int) -> str:
     stagnates, RAAR does not (64x64 objects, octanary masks: K = 3 needs RAAR;
     K = 4: RAAR 320 iterations to 1e-14, hybrid 370, ER 650-950).
     """
+    if mask_count == 1:
+        return "hio"  # one pattern: HIO with a support (shrink-wrapped when none is given)
     return "raar" if mask_count <= 4 else "hybrid"
 
 
@@ -788,10 +809,11 @@ def _run_poisson(ws, x, n, cons, residuals, stopper, deadline, truth, errors, fl
 
 
 def solve(intensities, masks, *, method: str = "auto", iterations: int | None = None, x0=None,
-          noise_model: str = "amplitude", support=None, nonnegative: bool = False, dtype=np.complex64,
+          noise_model: str = "amplitude", support=None, nonnegative: bool = False, dtype=None,
           tol: float | None = None, stall_tol: float = 0.0, time_budget_s: float | None = None,
           beta: float = 0.9, init_iterations: int = 20, er_warmup: int = 100, truth=None, seed: int = 0,
-          fft_backend: str = "auto", propagation=None) -> SolveResult:
+          fft_backend: str = "auto", propagation=None, prior: str | None = None,
+          prior_weight: float | None = None) -> SolveResult:
     """Recover x from y_k = |F(m_k x)|^2.
 
     Parameters
@@ -810,10 +832,16 @@ def solve(intensities, masks, *, method: str = "auto", iterations: int | None = 
         Poisson-likelihood method under "auto"), "gaussian" (Gaussian
         intensity noise: selects Wirtinger flow under "auto").
     support, nonnegative : optional constraints.
-    dtype : complex64 (default, fast; relative errors down to ~1e-6) or
-        complex128 (for 1e-10 and below).
+    dtype : None (default: the precision of the inputs, ``validation.working_dtype``:
+        complex64 when the intensities and masks are single precision, e.g. float32
+        frames with complex64 masks; complex128 when either is double), or
+        complex64 (fast; relative errors down to ~1e-6) / complex128 (1e-10 and below)
+        to choose.
+    iterations : a budget, not a target: the run stops earlier when ``tol`` is met,
+        when the residual sits at the rounding floor of the precision in use, or when
+        ``stall_tol`` / ``time_budget_s`` say so; ``result.stop_reason`` says which.
     tol : stop when the relative amplitude residual falls below this
-        (default: 1e-14 for complex128, 3e-7 for complex64).
+        (default ``DEFAULT_TOLERANCE``: 1e-14 for complex128, 3e-7 for complex64).
     stall_tol : if > 0, stop when the residual improves by less than this
         fraction over 20 iterations (useful on noisy data).
     time_budget_s : wall-clock cap on the iterations.
@@ -827,6 +855,9 @@ def solve(intensities, masks, *, method: str = "auto", iterations: int | None = 
     propagation : None (far field, the default) or a
         ``propagation.NearField(wavelength_m, pixel_pitch_m, distance_m)``
         for a camera in the near field (angular-spectrum model).
+    prior : None, or "tv" (total variation of the field, i.e. of amplitude and phase, added to the
+        Poisson likelihood: for low-dose data; implies method "poisson"; ``reconstruct/priors.py``).
+    prior_weight : the prior's weight lambda; None = chosen by the discrepancy principle.
     truth : optional true object; then ``result.errors`` tracks the
         relative error per iteration (costs time; for tests and benchmarks).
     """
@@ -835,10 +866,23 @@ def solve(intensities, masks, *, method: str = "auto", iterations: int | None = 
         raise ReconstructionInputError(f"unknown method {method!r}; choose one of {METHODS}.")
     if noise_model not in NOISE_MODELS:
         raise ReconstructionInputError(f"unknown noise_model {noise_model!r}; choose one of {NOISE_MODELS}.")
-    dt = check_dtype(dtype)
-    m = check_masks(masks)
+    dt = working_dtype(dtype, intensities, masks)
+    m = check_masks(masks, warn_k1=False)
+    if prior not in (None, "tv"):
+        raise ReconstructionInputError(f"unknown prior {prior!r}; choose None or 'tv'.")
+    if prior is not None:
+        if method not in ("auto", "poisson"):
+            raise ReconstructionInputError(f"prior={prior!r} regularises the Poisson likelihood: use method='poisson' "
+                                           f"(or 'auto'), not {method!r}.")
+        if nonnegative:
+            raise ReconstructionInputError("prior='tv' does not take nonnegative=True; use a support, or no prior.")
+        if prior_weight is not None and not (np.isfinite(prior_weight) and prior_weight >= 0):
+            raise ReconstructionInputError(f"prior_weight must be a finite number >= 0 or None; got {prior_weight}.")
+        method = "poisson"
     if method == "auto":
         method = {"poisson": "poisson", "gaussian": "wf"}.get(noise_model, default_method(m.shape[0]))
+    if m.shape[0] == 1 and method != "hio" and support is None:
+        warn_single_pattern()
     y = check_intensities(intensities, m.shape)
     ws = Workspace(m, dt, fft_backend, propagation=propagation)
     ws.set_intensities(y)
@@ -848,20 +892,29 @@ def solve(intensities, masks, *, method: str = "auto", iterations: int | None = 
     if int(iterations) < 0:
         raise ReconstructionInputError(f"iterations must be >= 0; got {iterations}.")
     if tol is None:
-        tol = 1e-14 if dt == np.complex128 else 3e-7
-    if x0 is None:
+        tol = DEFAULT_TOLERANCE[dt]
+    if x0 is None and method == "hio":
+        x = None  # HIO starts from random phases on the measured magnitudes (hio._random_start)
+    elif x0 is None:
         x = spectral_initialization(ws, init_iterations, seed)
     else:
         x = check_object(x0, m.shape[1:], name="x0").astype(dt)
-    if cons.active:
+    if cons.active and x is not None:
         cons(x)
     truth_arr = None if truth is None else check_object(truth, m.shape[1:], name="truth")
     residuals: list[float] = []
     errors: list[float] = []
-    stopper = _Stopper(tol, stall_tol)
+    stopper = _Stopper(tol, stall_tol, floor=PRECISION_FLOOR[dt])
     deadline = None if time_budget_s is None else t_start + float(time_budget_s)
     args = (ws, x, int(iterations), cons, residuals, stopper, deadline, truth_arr, errors)
-    if method == "hybrid":
+    if method == "hio":  # Fienup's HIO with a (given or shrink-wrapped) support: reconstruct/hio.py
+        from . import hio
+
+        out = hio.run_hio(ws, x0 if x0 is None else x, int(iterations), support, nonnegative, residuals, stopper,
+                          deadline, truth_arr, errors, hio.HIOSettings(beta=beta), seed=seed,
+                          single_pattern=m.shape[0] == 1)
+        x, it = out.estimate, out.iterations
+    elif method == "hybrid":
         x, it = _run_hybrid(*args, beta=beta)
     elif method == "er":
         x, it = _run_er(*args)
@@ -875,13 +928,28 @@ def solve(intensities, masks, *, method: str = "auto", iterations: int | None = 
         if x0 is None and er_warmup > 0:
             warm = _Stopper(tol, 1e-4)
             x, _ = _run_er(ws, x, er_warmup, cons, [], warm, deadline, None, [])
-        x, it = _run_poisson(*args)
+        if prior == "tv":
+            from .priors import run_poisson_tv
+
+            x, it = run_poisson_tv(ws, x, int(iterations), cons, residuals, stopper, deadline, truth_arr, errors,
+                                   weight=prior_weight)
+        else:
+            x, it = _run_poisson(*args)
     x = np.asarray(x, dtype=dt)
     x *= ws.lit
     if not np.all(np.isfinite(x)):
         raise FloatingPointError(f"solver {method!r} diverged (non-finite estimate); try method='er'.")
-    converged = stopper.reason in ("tolerance", "converged")
     return SolveResult(estimate=x, residuals=np.asarray(residuals), method=method, iterations=it,
-                       converged=converged, elapsed_s=time.perf_counter() - t_start,
+                       converged=stopper.reason in CONVERGED_REASONS, elapsed_s=time.perf_counter() - t_start,
                        errors=np.asarray(errors) if truth is not None else None,
-                       stop_reason=stopper.reason or "iterations")
+                       stop_reason=stop_reason(stopper.reason, it, iterations, deadline))
+
+
+def stop_reason(reason: str, done: int, budget: int, deadline) -> str:
+    """Why a run stopped, in words: the stopper's reason, else "time budget" when the deadline
+    passed, else "iterations" (the budget was used up)."""
+    if reason and reason != "switch":
+        return reason
+    if deadline is not None and time.perf_counter() >= deadline and done < budget:
+        return "time budget"
+    return "iterations"

@@ -30,6 +30,8 @@ __all__ = [
     "check_intensities",
     "check_object",
     "check_dtype",
+    "working_dtype",
+    "warn_single_pattern",
 ]
 
 
@@ -60,6 +62,32 @@ def check_dtype(dtype) -> np.dtype:
             "or numpy.complex128 (for errors below ~1e-6)."
         )
     return dt
+
+
+def working_dtype(dtype, *inputs) -> np.dtype:
+    """The complex dtype to compute in: ``dtype`` when given, else the precision of the inputs.
+
+    Precision follows the input, as numpy's own functions do: the working dtype is numpy's
+    result type of the inputs' dtypes and complex64 (``numpy.result_type``), so float32 frames
+    with complex64 masks compute in complex64 and anything in double precision (float64
+    frames, complex128 masks, Python lists) computes in complex128. Integer counts follow
+    numpy's promotion too (int16 with complex64 stays complex64, int64 goes to complex128).
+    Wider types (longdouble) compute in complex128, the widest supported.
+    """
+    if dtype is not None:
+        return check_dtype(dtype)
+    kinds = []
+    for a in inputs:
+        if a is None:
+            continue
+        dt = getattr(a, "dtype", None)
+        if dt is None:
+            dt = np.asarray(a).dtype
+        if dt == bool or not np.issubdtype(dt, np.number):
+            continue
+        kinds.append(dt)
+    rt = np.result_type(np.complex64, *kinds)
+    return np.dtype(np.complex64) if rt == np.complex64 else np.dtype(np.complex128)
 
 
 def check_masks(masks, *, warn_k1: bool = True) -> np.ndarray:
@@ -101,13 +129,19 @@ def check_masks(masks, *, warn_k1: bool = True) -> np.ndarray:
             stacklevel=3,
         )
     if warn_k1 and m.shape[0] == 1:
-        warnings.warn(
-            "K = 1 mask: phase retrieval from a single coded pattern is not uniquely solvable "
-            "(twin-image and shift ambiguities); use K >= 4 (K = 6-8 octanary masks recover generic objects).",
-            NotUniquelySolvableWarning,
-            stacklevel=3,
-        )
+        warn_single_pattern(stacklevel=4)
     return m
+
+
+def warn_single_pattern(stacklevel: int = 3) -> None:
+    """``NotUniquelySolvableWarning`` for K = 1 with a method other than HIO."""
+    warnings.warn(
+        "K = 1 mask: phase retrieval from a single pattern is not uniquely solvable without a support "
+        "(twin-image and shift ambiguities): use method='hio' (support given or shrink-wrapped, pattern "
+        "oversampled 2x), or K >= 4 masks (K = 6-8 octanary masks recover generic objects).",
+        NotUniquelySolvableWarning,
+        stacklevel=stacklevel,
+    )
 
 
 def check_intensities(intensities, mask_shape: tuple[int, int, int], *, dtype=np.float64) -> np.ndarray:

@@ -19,7 +19,7 @@ import dataclasses
 import numpy as np
 from scipy import ndimage
 
-__all__ = ["SampleTruth", "phase_target", "FUSED_SILICA_INDEX_633NM"]
+__all__ = ["SampleTruth", "phase_target", "isolated_amplitude_target", "FUSED_SILICA_INDEX_633NM"]
 
 #: Refractive index of fused silica at 632.8 nm (from memory; Malitson 1965 formula gives 1.4570).
 FUSED_SILICA_INDEX_633NM = 1.457
@@ -113,3 +113,30 @@ def phase_target(shape, wavelength_m: float = 632.8e-9, *, refractive_index: flo
     )
     return SampleTruth(field=field, thickness_m=thickness_m, description=description,
                        wavelength_m=float(wavelength_m), refractive_index=float(refractive_index))
+
+
+def isolated_amplitude_target(shape, *, blur_px: float = 1.0) -> SampleTruth:
+    """An isolated absorbing object for single-pattern (no modulator) benches: a triangular opening
+    in an opaque screen, half the grid wide and high at most (so the far-field pattern is
+    oversampled 2x per axis), centred; inside, the test plate's features as chromium (amplitude
+    ``CHROMIUM_AMPLITUDE``) on clear glass. Real and non-negative (no phase), edges softened by
+    ``blur_px``; the triangle is not centrosymmetric, which avoids HIO's twin-image stagnation.
+    """
+    h, w = (int(s) for s in shape)
+    if h < 32 or w < 32:
+        raise ValueError(f"isolated_amplitude_target needs a grid of at least 32 x 32 pixels, got {h} x {w}")
+    margin = 2 * int(np.ceil(3 * blur_px)) + 2  # the blurred edges stay inside half the grid too
+    oh, ow = h // 2 - margin, w // 2 - margin
+    inner = phase_target((oh, ow), blur_px=0.0)
+    features = inner.thickness_m < 0  # etched features of the plate, drawn in chromium here
+    amp = np.where(features, CHROMIUM_AMPLITUDE, 1.0)
+    rows, cols = np.mgrid[0:oh, 0:ow]
+    opening = rows / oh >= cols / ow  # lower-left triangle
+    obj = np.zeros((h, w))
+    r0, c0 = (h - oh) // 2, (w - ow) // 2
+    obj[r0:r0 + oh, c0:c0 + ow] = amp * opening
+    if blur_px > 0:
+        obj = ndimage.gaussian_filter(obj, blur_px, mode="constant")
+    return SampleTruth(field=obj.astype(np.complex128), thickness_m=np.zeros((h, w)),
+                       description=f"isolated amplitude object {oh}x{ow} px (triangular opening, chromium "
+                       f"features {CHROMIUM_AMPLITUDE}) on a {h}x{w} grid, opaque outside")

@@ -35,7 +35,7 @@ def test_accumulate_sharpens_and_reports_consistent_figures():
     x = camera_object(48)
     m = octanary_masks(8, x.shape, seed=1)
     sets, truth = frame_sets(x, m, 1e5, 4, dark_offset=0.3)
-    eng = IncrementalEngine(m, mode="accumulate")
+    eng = IncrementalEngine(m, mode="accumulate", dtype=np.complex64)  # as the daemon's worker asks
     assert eng.estimate is None
     errs = []
     for i, ys in enumerate(sets):
