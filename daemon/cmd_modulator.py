@@ -60,6 +60,13 @@ def cmd_measure_response(args) -> int:
         console.print(f"Note: \\[modulator] profile = {cfg.modulator.profile!r} is not used while measuring "
                       "(the grey levels are shown as they are).")
     bench = build_bench(cfg)
+    from maskrun.drivers import Modulator
+
+    if type(bench.modulator).show_grey is Modulator.show_grey:
+        bench.close()
+        raise CommandError(f"the {cfg.modulator.driver!r} modulator cannot show arbitrary grey images, which the "
+                           "response measurement needs: use a modulator driven as a display ('display'), or "
+                           "'simulated' on the simulated bench")
     try:
         acknowledge(cfg.laser, console, unattended=args.ack, operator=cfg.run.operator)
         bench.open()

@@ -41,5 +41,7 @@ def masks_as_imposed(designed: np.ndarray, profile=None, offset_px=(0.0, 0.0)) -
     if profile is not None:
         masks = profile.impose(masks)
     if tuple(float(o) for o in offset_px) != (0.0, 0.0):
-        masks = rc.shift_masks(masks, offset_px)
+        from maskrun.reconstruct.masks import shift_masks
+
+        masks = shift_masks(masks, offset_px)
     return masks
