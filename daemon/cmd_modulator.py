@@ -114,7 +114,6 @@ def cmd_register_masks(args) -> int:
 
     console = Console(highlight=False)
     cfg = load_config(args.config)
-    bench = build_bench(cfg)
     reference_image = None
     if args.reference_run:
         from .runfile import RunFile
@@ -123,14 +122,20 @@ def cmd_register_masks(args) -> int:
             if rf.estimate_count == 0:
                 raise CommandError(f"{args.reference_run}: holds no estimate to register on")
             reference_image = rf.estimates()[-1]
-    try:
-        if args.from_run:
-            try:
-                y = frame_set_from_run(args.from_run, args.set_number)
-            except ValueError as exc:
-                raise CommandError(str(exc)) from None
-            source = f"frame set {args.set_number} of {args.from_run}"
-        else:
+    optics = None
+    if args.from_run:  # no devices needed: the frames are in the file
+        from .bench import _load_modulator_profile
+
+        modulator_profile = _load_modulator_profile(cfg)
+        try:
+            y = frame_set_from_run(args.from_run, args.set_number)
+        except ValueError as exc:
+            raise CommandError(str(exc)) from None
+        source = f"frame set {args.set_number} of {args.from_run}"
+    else:
+        bench = build_bench(cfg)
+        modulator_profile, optics = bench.modulator_profile, bench.optics
+        try:
             acknowledge(cfg.laser, console, unattended=args.ack, operator=cfg.run.operator)
             bench.open()
             try:
@@ -138,11 +143,11 @@ def cmd_register_masks(args) -> int:
             except SaturatedFrames as exc:
                 raise CommandError(str(exc)) from None
             source = "one frame set taken now"
-    finally:
-        bench.close()
+        finally:
+            bench.close()
     with console.status(f"searching offsets ({source})"):
         try:
-            r = register(cfg, y, bench.modulator_profile, reference_px=args.reference_px,
+            r = register(cfg, y, modulator_profile, reference_px=args.reference_px,
                          reference_image=reference_image, iterations=args.iterations)
         except ValueError as exc:
             raise CommandError(str(exc)) from None
@@ -155,7 +160,7 @@ def cmd_register_masks(args) -> int:
     ref_note = "reference run's estimate" if reference_image is not None else "intensity centroid"
     t.add_row(f"  whole pixels (from the {ref_note})", f"{r.offset_px[0] - r.fraction_px[0]:+.0f}",
               f"{r.offset_px[1] - r.fraction_px[1]:+.0f}")
-    t.add_row("now in [masks] offset_px", f"{cfg.masks.offset_px[0]:+.3f}", f"{cfg.masks.offset_px[1]:+.3f}")
+    t.add_row("now in \\[masks] offset_px", f"{cfg.masks.offset_px[0]:+.3f}", f"{cfg.masks.offset_px[1]:+.3f}")
     console.print(t)
     console.print(f"Data residual: {r.residual:.4f} at the estimate, {r.residual_designed:.4f} with the masks as designed "
                   f"({r.evaluations} reconstructions). Whole-pixel shifts leave the data unchanged (they move the "
@@ -163,8 +168,8 @@ def cmd_register_masks(args) -> int:
                   + ("the reference run's estimate." if reference_image is not None else
                      f"the centroid, taken to be at ({r.reference_px[0]:g}, {r.reference_px[1]:g}) - right for the bare "
                      "beam centred on the grid; with a sample in, use --reference-px or --reference-run."))
-    if bench.optics is not None:
-        true = bench.optics.mask_offset_px
+    if optics is not None:
+        true = optics.mask_offset_px
         console.print(f"Simulated bench: the modulator is displaced by ({true[0]:g}, {true[1]:g}); estimate error "
                       f"{np.hypot(r.offset_px[0] - true[0], r.offset_px[1] - true[1]):.3f} px.")
     if args.apply:
