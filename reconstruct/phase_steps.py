@@ -59,7 +59,7 @@ def _wrap(p):
     return np.angle(np.exp(1j * np.asarray(p)))
 
 
-def phase_steps(frames, *, reference: int = 0, iterations: int = 200, tol_rad: float = 1e-7,
+def phase_steps(frames, *, reference: int = 0, iterations: int = 3000, tol_rad: float = 1e-7,
                 valid=None) -> PhaseSteps:
     """Recover the phase steps D_n from N frames (N, H, W) (any linear units, offset allowed).
 
@@ -67,7 +67,10 @@ def phase_steps(frames, *, reference: int = 0, iterations: int = 200, tol_rad: f
     others are left out of the fit and get a, p, q = 0.
 
     reference: index of the frame taken with the stepped region at the reference level (D = 0 there).
-    Needs N >= 3 and steps that are not all alike (the response measurement steps through the grey range).
+    Needs N >= 4 frames whose steps point in at least three directions on the circle (four quarter
+    steps, two antipodal pairs, are degenerate: skewed quadratures fit as well). Steps that go round
+    the circle, as in the response measurement, converge in tens of alternations; few steps crowded
+    together (or spanning well under pi) converge slowly, up to the ``iterations`` cap.
     """
     f = np.asarray(frames, dtype=np.float64)
     if f.ndim != 3 or f.shape[0] < 3:

@@ -145,3 +145,15 @@ def test_the_verb_from_a_run_file_and_with_apply(tmp_path, capsys):
     assert np.hypot(got[0] - offset[0], got[1] - offset[1]) < 0.2
     assert main(["register-masks", str(cfg_path), "--from-run", str(run_file), "--set", "9"]) == 2
     assert "no complete frame set number 9" in capsys.readouterr().err
+
+
+from hypothesis import given, settings, strategies as st  # noqa: E402
+
+
+@settings(max_examples=6, deadline=None)
+@given(rows=st.floats(-3, 3), cols=st.floats(-3, 3))
+def test_any_offset_within_three_pixels_is_found(rows, cols):
+    x = bare_beam((24, 24)) * 300
+    m = octanary_masks(6, (24, 24), seed=1)
+    r = estimate_mask_offset(_frames(x, m, (rows, cols), seed=2), m)
+    assert np.hypot(r.offset_px[0] - rows, r.offset_px[1] - cols) < 0.2

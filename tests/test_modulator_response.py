@@ -157,3 +157,37 @@ def test_runs_with_the_measured_profile_store_and_use_the_masks_as_imposed(tmp_p
     assert "quantized through the modulator profile slm.json" in attrs["masks_as_stored"]
     kept = ModulatorProfile.model_validate_json(attrs["modulator_profile"])
     assert kept.phase_rad == measured.phase_rad and kept.grey_levels == measured.grey_levels and kept.measured
+
+
+from hypothesis import given, settings, strategies as st  # noqa: E402
+
+
+@settings(max_examples=25, deadline=None)
+@given(n=st.integers(12, 60), span=st.floats(2 * np.pi, 3 * np.pi), seed=st.integers(0, 10_000))
+def test_unknown_steps_are_recovered_for_any_steps_around_the_circle(n, span, seed):
+    # as in the measurement, the steps go once round the circle or more (a grey range reaching 2 pi),
+    # at random places, a dozen or more (few steps crowded together converge slowly: see phase_steps)
+    rng = np.random.default_rng(seed)
+    steps = np.concatenate([[0.0], np.sort(rng.uniform(0, span, n - 2)), [span]])
+    theta = rng.uniform(-np.pi, np.pi, (10, 10))
+    a, b = 3 + rng.random((10, 10)), 0.5 + rng.random((10, 10))
+    got = phase_steps(a + b * np.cos(theta[None] + steps[:, None, None]), reference=0)
+    diff = [np.max(np.abs(np.angle(np.exp(1j * (s * got.phase_rad - steps))))) for s in (1, -1)]
+    assert min(diff) < 2e-3  # noise-free: limited by the slow final convergence of few, uneven steps
+
+
+def test_the_example_bench_has_a_non_nominal_displaced_slm():
+    from pathlib import Path
+
+    import maskrun.configs
+
+    from maskrun.daemon.config import load_config
+
+    path = Path(maskrun.configs.__file__).parent / "simulated-slm.toml"
+    bench = build_bench(load_config(path))
+    try:
+        assert bench.optics.mask_offset_px == (0.0, 2.5)
+        assert bench.optics.slm_response.phase_of_grey([220])[0] == pytest.approx(2 * np.pi)
+        assert type(bench.modulator).__name__ == "SimulatedModulator"
+    finally:
+        bench.close()
