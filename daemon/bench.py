@@ -20,7 +20,7 @@ from maskrun.drivers.errors import DriverSettingsError, UnknownDriver
 
 from .checks import Response
 from .config import BenchConfig, ConfigError
-from .masks import make_masks
+from .masks import make_masks, masks_as_imposed
 
 log = logging.getLogger(__name__)
 
@@ -39,7 +39,14 @@ class Bench:
     firmware: list = field(default_factory=list)
     profile: Any = None  # CameraProfile from 'maskrun calibrate', when [response] profile names one
     flat_field: np.ndarray | None = None  # per-pixel response (float32, mean 1, frame shape) from the profile
+    device_masks: np.ndarray | None = None  # designed masks, loaded into the modulator (None: same as masks)
+    modulator_profile: Any = None  # ModulatorProfile from [modulator] profile, or None
     _opened: list = field(default_factory=list)
+
+    @property
+    def masks_adjusted(self) -> bool:
+        """True when the stored/reconstructed masks differ from the designed ones (profile or offset)."""
+        return self.device_masks is not None
 
     @property
     def grid_shape(self) -> tuple[int, int]:
@@ -71,7 +78,7 @@ class Bench:
 
             raise ProfileMismatch([f"flat field shape {tuple(self.flat_field.shape)}, frames "
                                    f"{tuple(self.camera.frame_shape)} on the camera"], self.config.response.profile)
-        self.modulator.load(self.masks)
+        self.modulator.load(self.masks if self.device_masks is None else self.device_masks)
 
     def firmware_info(self) -> list[dict]:
         """The simulated devices' firmware: name, port and (own process) pid."""
@@ -128,7 +135,13 @@ def build_bench(cfg: BenchConfig) -> Bench:
                            cfg.config_dir / cfg.masks.path if cfg.masks.path else None)
     except (ValueError, OSError) as exc:
         raise ConfigError(src, [("masks", str(exc))]) from None
-    context = BenchContext(config_dir=str(cfg.config_dir), wavelength_m=cfg.laser.wavelength_m)
+    modulator_profile = _load_modulator_profile(cfg)
+    device_masks = None
+    if modulator_profile is not None or tuple(cfg.masks.offset_px) != (0.0, 0.0):
+        device_masks = masks
+        masks = masks_as_imposed(device_masks, modulator_profile, cfg.masks.offset_px)
+    context = BenchContext(config_dir=str(cfg.config_dir), wavelength_m=cfg.laser.wavelength_m,
+                           modulator_profile=modulator_profile)
     firmware = []
     try:
         camera = _driver("camera", "camera", cfg.camera, context, src)
@@ -142,7 +155,7 @@ def build_bench(cfg: BenchConfig) -> Bench:
             )
         optics = truth = None
         if cfg.simulation is not None:
-            optics, truth = _simulated_optics(cfg, masks, (rows, cols))
+            optics, truth = _simulated_optics(cfg, masks if device_masks is None else device_masks, (rows, cols))
             context.optics = optics
             if cfg.simulation.firmware_processes and cfg.simulation.firmware:
                 from .firmware_procs import start_firmware_processes
@@ -159,7 +172,7 @@ def build_bench(cfg: BenchConfig) -> Bench:
                     context.ports[name] = handle.port
         modulator = _driver("modulator", "modulator", cfg.modulator, context, src)
         try:  # a mask family the device cannot impose is a config error, before any notice or device
-            modulator.check_masks(cfg.masks.family, masks)
+            modulator.check_masks(cfg.masks.family, masks if device_masks is None else device_masks)
         except DeviceError as exc:
             raise ConfigError(src, [("masks.family" if "family" in exc.detail else "modulator.settings",
                                      f"{exc.detail} ({exc.hint})")]) from None
@@ -180,7 +193,8 @@ def build_bench(cfg: BenchConfig) -> Bench:
         else:
             response = Response(cfg.response.gain_dn_per_e, cfg.response.offset_dn, cfg.response.quantum_efficiency)
         bench = Bench(cfg, masks, camera, modulator, safety, response, context, optics, truth, firmware,
-                      profile=profile, flat_field=flat)
+                      profile=profile, flat_field=flat, device_masks=device_masks,
+                      modulator_profile=modulator_profile)
         check_exposure(bench, cfg.camera.exposure_s)
         check_watchdog(bench, cfg.camera.exposure_s)
         if cfg.reconstruction.enabled:
@@ -240,16 +254,49 @@ def _load_profile(cfg: BenchConfig):
         raise ConfigError(cfg.source_path, [("response.profile", str(exc))]) from None
 
 
+def _load_modulator_profile(cfg: BenchConfig):
+    """The ModulatorProfile named in [modulator] profile (relative to the config's folder), or None."""
+    if not cfg.modulator.profile:
+        return None
+    from maskrun.drivers.modulator_profile import ModulatorProfile, ModulatorProfileError
+
+    try:
+        profile = ModulatorProfile.load(cfg.config_dir / cfg.modulator.profile)
+    except ModulatorProfileError as exc:
+        raise ConfigError(cfg.source_path, [("modulator.profile", f"{exc}; measure one with 'maskrun "
+                                             "measure-response CONFIG'")]) from None
+    wl = cfg.laser.wavelength_m
+    if abs(profile.wavelength_m - wl) > 1e-3 * wl:
+        raise ConfigError(cfg.source_path, [("modulator.profile",
+                          f"the profile holds for {profile.wavelength_m * 1e9:.1f} nm but [laser] is at {wl * 1e9:.1f} nm: "
+                          "an SLM's response depends on the wavelength; measure it at this one")])
+    return profile
+
+
 def _simulated_optics(cfg: BenchConfig, masks: np.ndarray, sensor_shape):
     from maskrun.simulators.optics import SimulatedOptics
-    from maskrun.simulators.sample import isolated_amplitude_target, phase_target
+    from maskrun.simulators.sample import bare_beam, isolated_amplitude_target, phase_target
 
-    if cfg.simulation.sample == "isolated_amplitude_target":  # single-pattern benches (no modulator pattern)
-        sample = isolated_amplitude_target(tuple(cfg.grid.shape))
+    sim = cfg.simulation
+    grid = tuple(cfg.grid.shape)
+    if sim.sample == "beam":
+        sample = bare_beam(grid)
+    elif sim.sample == "isolated_amplitude_target":  # single-pattern benches (no modulator pattern)
+        sample = isolated_amplitude_target(grid).field
     else:
-        sample = phase_target(tuple(cfg.grid.shape), wavelength_m=cfg.laser.wavelength_m)
-    optics = SimulatedOptics(sample.field, masks, cfg.simulation.photon_rate_per_s, sensor_shape,
-                             mask_offset_px=cfg.simulation.modulator_offset_px)
+        sample = phase_target(grid, wavelength_m=cfg.laser.wavelength_m).field
+    slm = None
+    if sim.modulator_response is not None:
+        if cfg.modulator.driver != "simulated":
+            raise ConfigError(cfg.source_path, [("simulation.modulator_response",
+                              f"a simulated SLM response needs [modulator] driver = 'simulated' (the in-process "
+                              f"simulated SLM), not {cfg.modulator.driver!r}")])
+        from maskrun.simulators.modulator import true_response_profile
+
+        r = sim.modulator_response
+        slm = true_response_profile(r.grey_levels_per_2pi, r.curvature, r.levels, cfg.laser.wavelength_m)
+    optics = SimulatedOptics(sample, masks, sim.photon_rate_per_s, sensor_shape,
+                             mask_offset_px=sim.modulator_offset_px, slm_response=slm)
     return optics, optics.truth_field()
 
 

@@ -30,6 +30,7 @@ COMMAND_MODULES = [
     "maskrun.daemon.cmd_view",
     "maskrun.daemon.cmd_report",
     "maskrun.daemon.cmd_firmware",
+    "maskrun.daemon.cmd_modulator",
     "maskrun.daemon.cmd_resume",  # after cmd_service: shares the verb 'resume' (run file, or the daemon)
 ]
 

@@ -85,6 +85,9 @@ class MaskConfig(_Table):
     seed: int = 0
     levels: int = Field(8, ge=2, description="phase levels for quantized_phase")
     path: str | None = Field(None, description="mask file (.npy/.npz) for family = 'file'")
+    offset_px: tuple[float, float] = Field(
+        (0.0, 0.0), description="(rows, cols) grid pixels by which the masks land displaced on the field, as measured "
+        "by 'maskrun register-masks'; the stored and reconstructed masks are the designed ones shifted by this")
 
     @field_validator("count")
     @classmethod
@@ -107,6 +110,12 @@ class DeviceConfig(_Table):
 
     driver: str
     settings: dict[str, Any] = Field(default_factory=dict)
+
+
+class ModulatorConfig(DeviceConfig):
+    profile: str | None = Field(None, description="modulator phase-response profile (JSON, from 'maskrun "
+                                "measure-response'); the masks are quantized through it, so the run file stores the "
+                                "masks as really imposed")
 
 
 class CameraConfig(DeviceConfig):
@@ -258,12 +267,22 @@ class FirmwareConfig(_Table):
     settle_s: float = Field(0.0, ge=0)
 
 
+class SimulatedResponseConfig(_Table):
+    """The simulated SLM's TRUE grey level -> phase curve (maskrun itself only knows the nominal or measured one):
+    phase(g) = 2 pi u (1 + curvature (1 - u)), u = g / grey_levels_per_2pi, for g = 0 .. levels - 1."""
+
+    grey_levels_per_2pi: float = Field(gt=1, description="grey level at which the true phase reaches 2 pi")
+    curvature: float = Field(0.0, gt=-1, lt=1, description="0 = linear; > 0 bows the curve up (steeper at low grey)")
+    levels: int = Field(256, ge=2, le=65536, description="grey levels the device accepts (0 .. levels - 1)")
+
+
 class SimulationConfig(_Table):
     """The simulated optical bench (present only when the bench is simulated)."""
 
-    sample: Literal["phase_target", "isolated_amplitude_target"] = Field(
-        "phase_target", description="phase_target: the etched plate filling the grid; isolated_amplitude_target: "
-        "an isolated absorbing object for single-pattern benches (masks family 'blank')")
+    sample: Literal["phase_target", "isolated_amplitude_target", "beam"] = Field(
+        "phase_target", description="phase_target: the etched test plate filling the grid; isolated_amplitude_target: "
+        "an isolated absorbing object for single-pattern benches (masks family 'blank'); beam: the bare Gaussian "
+        "beam (sample removed), e.g. to register the masks")
     photon_rate_per_s: float = Field(gt=0, description="incident photons per second on the detector, shutter open")
     seed: int = 0
     firmware: dict[Literal["modulator", "safety"], FirmwareConfig] = Field(default_factory=dict)
@@ -273,6 +292,9 @@ class SimulationConfig(_Table):
     modulator_offset_px: tuple[float, float] = Field(
         (0.0, 0.0), description="(rows, cols) grid pixels by which the simulated modulator image is displaced "
         "on the field: a misregistered bench (the reconstruction still assumes the designed masks)")
+    modulator_response: SimulatedResponseConfig | None = Field(
+        None, description="true grey -> phase curve of the simulated SLM (needs [modulator] driver = 'simulated'); "
+        "absent: the simulated modulator imposes the masks exactly")
 
 
 class BenchConfig(_Table):
@@ -283,7 +305,7 @@ class BenchConfig(_Table):
     masks: MaskConfig = MaskConfig()
     camera: CameraConfig
     response: ResponseConfig
-    modulator: DeviceConfig
+    modulator: ModulatorConfig
     safety: DeviceConfig
     checks: ChecksConfig = ChecksConfig()
     reconstruction: ReconstructionConfig = ReconstructionConfig()

@@ -30,3 +30,20 @@ def make_masks(family: str, count: int, shape, seed: int = 0, levels: int = 8, p
             raise ValueError(f"{path}: masks have shape {masks.shape}, the config asks for {(count, *shape)}")
         return masks
     raise ValueError(f"unknown mask family {family!r}")
+
+
+def masks_as_imposed(designed: np.ndarray, profile=None, offset_px=(0.0, 0.0)) -> np.ndarray:
+    """The masks as they really act on the field: the designed ones quantized through the modulator's
+    phase response (``profile``: a ``ModulatorProfile``, or None for an exact device), then displaced by
+    the measured registration ``offset_px`` = (rows, cols) grid pixels (``[masks] offset_px``).
+
+    These are what the run file stores and the reconstruction uses; the modulator is still given the
+    designed masks (it quantizes them itself, through the same table)."""
+    masks = np.asarray(designed)
+    if profile is not None:
+        masks = profile.impose(masks)
+    if tuple(float(o) for o in offset_px) != (0.0, 0.0):
+        from maskrun.reconstruct.masks import shift_masks
+
+        masks = shift_masks(masks, offset_px)
+    return masks

@@ -529,9 +529,10 @@ class Service:
         elif req.action == "shift_sample":
             optics.set_sample(np.roll(optics.sample, tuple(req.shift_px), axis=(0, 1)), rescale=False)
         elif req.action == "reset_sample":
-            from maskrun.simulators.sample import phase_target
+            from maskrun.simulators.sample import bare_beam, phase_target
 
-            optics.set_sample(phase_target(self.bench.grid_shape, wavelength_m=self.cfg.laser.wavelength_m).field)
+            optics.set_sample(bare_beam(self.bench.grid_shape) if self.cfg.simulation.sample == "beam" else
+                              phase_target(self.bench.grid_shape, wavelength_m=self.cfg.laser.wavelength_m).field)
         self.bench.truth = optics.truth_field()
         if self.state == "idle":
             self._housekeeping()  # the status shows the new interlock state at once

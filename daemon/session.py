@@ -38,6 +38,7 @@ def run_header(bench: Bench, ack: Acknowledgement, run_name: str, plan: RunPlan 
     describe = getattr(bench.modulator, "describe", None)  # e.g. the display modulator's response and mapping
     if callable(describe):
         extra["modulator_json"] = json.dumps(describe())
+    extra.update(masks_provenance(bench))
     return RunHeader(
         run_name=run_name,
         config_toml=cfg.source_text,
@@ -53,11 +54,28 @@ def run_header(bench: Bench, ack: Acknowledgement, run_name: str, plan: RunPlan 
     )
 
 
+def masks_provenance(bench: Bench) -> dict:
+    """Attributes of /entry saying what /entry/masks are: designed, or as really imposed (quantized through the
+    modulator profile, whose JSON is kept, and shifted by the measured registration offset)."""
+    cfg = bench.config
+    mp = getattr(bench, "modulator_profile", None)
+    offset = tuple(float(o) for o in cfg.masks.offset_px)
+    parts = ["designed"]
+    if mp is not None:
+        parts.append(f"quantized through the modulator profile {cfg.modulator.profile}")
+    if offset != (0.0, 0.0):
+        parts.append(f"shifted by [masks] offset_px = ({offset[0]:g}, {offset[1]:g}) grid pixels")
+    return {"masks_as_stored": ", ".join(parts), "masks_offset_px": np.asarray(offset, dtype=np.float64),
+            "modulator_profile": mp.model_dump_json() if mp is not None else ""}
+
+
 def make_recon_link(bench: Bench, zmq_context: zmq.Context) -> ReconLink | None:
     cfg = bench.config
     if not cfg.reconstruction.enabled:
         return None
-    spec = {"family": cfg.masks.family, "count": cfg.masks.count, "shape": bench.grid_shape,
+    # masks as imposed (profile, offset) cannot be rebuilt from the family: they travel like file masks
+    family = "file" if getattr(bench, "masks_adjusted", False) else cfg.masks.family
+    spec = {"family": family, "count": cfg.masks.count, "shape": bench.grid_shape,
             "seed": cfg.masks.seed, "levels": cfg.masks.levels}
     from .remote_workers import link_options  # worker address, local worker on/off, CURVE keys (scale-out)
 

@@ -59,12 +59,17 @@ class BenchContext:
         resolves through it.
     config_dir: folder of the bench config, for resolving relative file paths.
     wavelength_m: the laser's wavelength, metres (None when not known).
+    modulator_profile: the ``drivers.modulator_profile.ModulatorProfile`` named by
+        ``[modulator] profile`` (grey level -> phase), or None. A modulator that turns
+        phases into grey levels uses it when its own settings name no response table,
+        so the device and the mask builder quantize through the same table.
     """
 
     optics: Any = None
     ports: dict[str, str] = dataclasses.field(default_factory=dict)
     config_dir: str = "."
     wavelength_m: float | None = None  # the laser's ([laser] wavelength_m), for drivers whose response depends on it
+    modulator_profile: Any = None
 
     def resolve_port(self, port: str) -> str:
         if port.startswith("sim:"):
@@ -251,6 +256,25 @@ class Modulator(Device):
     def check_masks(self, family: str, masks: np.ndarray) -> None:
         """Raise DeviceMisconfigured when this device cannot impose the mask family ``family`` (or these
         masks), naming the families it can; called when the bench is built from the config. Default: any."""
+
+    def show_grey(self, grey: np.ndarray) -> None:
+        """Show a raw grey-level image instead of a mask (calibration: the phase-response measurement).
+
+        ``grey``: integer array (H, W) in mask pixels (the grid of the loaded masks), the levels the
+        device accepts. It is mapped to device pixels exactly as a mask is (superpixel size, offset,
+        active region, fixed level outside), but with NO response table, wavefront correction or
+        phase ramp: the device shows these levels. Returns once acknowledged, like ``show``; then
+        wait ``settle_s``. The next ``show(k)`` shows mask k again.
+
+        Optional: the default refuses (DeviceMisconfigured) for devices that cannot show arbitrary
+        images (a mask wheel, a serial controller with stored patterns).
+        """
+        from .errors import DeviceMisconfigured
+
+        raise DeviceMisconfigured(f"the {type(self).__name__} modulator cannot show arbitrary grey images",
+                                  device="modulator",
+                                  hint="measure the response with a modulator that can (the 'display' or "
+                                  "'simulated' driver)")
 
 
 class SafetyBox(Device):

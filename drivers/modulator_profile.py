@@ -114,6 +114,13 @@ class ModulatorProfile(BaseModel):
         """The phase the device really imposes when asked for ``phase_rad`` (through the table)."""
         return self.phase_of_grey(self.grey_for_phase(phase_rad))
 
+    def impose(self, masks) -> np.ndarray:
+        """The masks as the device really imposes them through this table (complex128, same shape):
+        each pixel's phase is replaced by the phase of the grey level it is quantized to
+        (``imposed_phase``); the amplitude is kept (an amplitude mask in front of a phase SLM)."""
+        m = np.asarray(masks)
+        return np.abs(m) * np.exp(1j * self.imposed_phase(np.angle(m)))
+
     # ------------------------------------------------------------ files
     @classmethod
     def load(cls, path: str | os.PathLike) -> "ModulatorProfile":

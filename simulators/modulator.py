@@ -5,6 +5,13 @@ No pseudo-terminal, no protocol: for fast unit tests and demos. ``show(k)`` sets
 pulse goes out on the optics trigger line (if ``trigger_output``), so a camera in hardware
 trigger mode exposes once per shown mask. Without a simulated bench (``context.optics`` is
 None) it only keeps its own state, so it can still be exercised alone.
+
+A phase SLM with a response that is not the nominal one: when the bench has a TRUE response
+(``optics.slm_response``, from ``[simulation] modulator_response``), the modulator does what a
+display-driven SLM does. It turns each mask's phase into a grey level through the table maskrun
+believes (``[modulator] profile`` via ``context.modulator_profile``, else the nominal linear table
+``grey_levels_per_2pi``), and the field then gets the phase of that grey level through the TRUE
+curve (amplitudes are kept). ``show_grey`` shows a raw grey image through the true curve.
 """
 
 from __future__ import annotations
@@ -17,8 +24,24 @@ from pydantic import Field
 
 from maskrun.drivers.base import DriverSettings, Modulator
 from maskrun.drivers.errors import DeviceDisconnected, DeviceMisconfigured
+from maskrun.drivers.modulator_profile import ModulatorProfile, ModulatorProfileError, linear_profile
 
-__all__ = ["SimulatedModulator"]
+__all__ = ["SimulatedModulator", "true_response_profile"]
+
+
+def true_response_profile(grey_levels_per_2pi: float, curvature: float = 0.0, levels: int = 256,
+                          wavelength_m: float = 632.8e-9) -> ModulatorProfile:
+    """The simulated SLM's true table: phase(g) = 2 pi u (1 + curvature (1 - u)), u = g / grey_levels_per_2pi.
+
+    2 pi is reached at ``grey_levels_per_2pi`` whatever the curvature; curvature 0 is linear. A bowed,
+    gamma-like curve of this kind is what liquid-crystal SLMs show before their look-up table is
+    corrected (common practice, no source)."""
+    g = np.arange(int(levels), dtype=np.float64)
+    u = g / float(grey_levels_per_2pi)
+    phase = 2 * np.pi * u * (1.0 + float(curvature) * (1.0 - u))
+    return ModulatorProfile(wavelength_m=float(wavelength_m), grey_levels=g.astype(int).tolist(),
+                            phase_rad=phase.tolist(), measured=False,
+                            method=f"simulated truth: 2 pi at grey {grey_levels_per_2pi:g}, curvature {curvature:g}")
 
 
 class SimulatedModulator(Modulator):
@@ -27,6 +50,10 @@ class SimulatedModulator(Modulator):
     class Settings(DriverSettings):
         settle_s: float = Field(default=0.0, ge=0, description="time after show() before the mask is in place, s")
         trigger_output: bool = Field(default=True, description="pulse the trigger line once a mask is in place")
+        grey_levels_per_2pi: float = Field(
+            default=256.0, gt=1, description="nominal response (used without [modulator] profile): phase = "
+            "2 pi grey / grey_levels_per_2pi; matters only when the simulated SLM has a true response")
+        grey_levels: int = Field(default=256, ge=2, le=65536, description="grey levels of the nominal table")
 
     def __init__(self, settings, context=None):
         super().__init__(settings, context)
@@ -50,6 +77,39 @@ class SimulatedModulator(Modulator):
             raise DeviceDisconnected("the simulated modulator is not open", device="modulator",
                                      hint="open the modulator first")
 
+    # ------------------------------------------------------------ response
+    @property
+    def believed_response(self) -> ModulatorProfile:
+        """The grey level -> phase table this device drives its grey levels with (what maskrun knows)."""
+        if self.context.modulator_profile is not None:
+            return self.context.modulator_profile
+        # the wavelength does not enter the nominal mapping; the table is never written out
+        return linear_profile(self.settings.grey_levels_per_2pi, 632.8e-9, levels=self.settings.grey_levels)
+
+    def _true_response(self) -> ModulatorProfile | None:
+        optics = self.context.optics
+        return getattr(optics, "slm_response", None) if optics is not None else None
+
+    def _phase_of_grey(self, grey: np.ndarray) -> np.ndarray:
+        table = self._true_response() or self.believed_response
+        try:
+            return table.phase_of_grey(grey)
+        except ModulatorProfileError:
+            raise DeviceMisconfigured(
+                f"grey levels {int(grey.min())}..{int(grey.max())} are not all levels the simulated SLM accepts "
+                f"({table.grey_levels[0]}..{table.grey_levels[-1]})", device="modulator",
+                hint="make the modulator profile's grey levels match the device's") from None
+
+    def as_imposed(self, masks: np.ndarray) -> np.ndarray:
+        """What the field gets when this device is asked for ``masks`` (complex (K, H, W))."""
+        if self._true_response() is None:
+            if self.context.modulator_profile is None:
+                return masks  # an ideal modulator
+            return self.context.modulator_profile.impose(masks)  # a device whose response is the profile
+        grey = self.believed_response.grey_for_phase(np.angle(masks))
+        return np.abs(masks) * np.exp(1j * self._phase_of_grey(grey))
+
+    # ------------------------------------------------------------ masks
     def load(self, masks: np.ndarray) -> None:
         self._check_open()
         masks = np.asarray(masks)
@@ -63,9 +123,10 @@ class SimulatedModulator(Modulator):
                     f"masks are {masks.shape[1]} x {masks.shape[2]} but the simulated bench's grid is "
                     f"{optics.grid_shape[0]} x {optics.grid_shape[1]}",
                     device="modulator", hint="make the run's grid shape match [simulation] grid_shape")
+            shown = self.as_imposed(masks)
             current = optics.masks
-            if current.shape != masks.shape or not np.array_equal(current, masks):
-                optics.set_masks(masks)
+            if current.shape != shown.shape or not np.array_equal(current, shown):
+                optics.set_masks(shown)
         self._count = int(masks.shape[0])
 
     def show(self, index: int) -> None:
@@ -76,12 +137,37 @@ class SimulatedModulator(Modulator):
         if not 0 <= index < self._count:
             raise DeviceMisconfigured(f"mask {index} outside 0..{self._count - 1}", device="modulator")
         optics = self.context.optics
-        if self._timer is not None:
-            self._timer.cancel()
-            self._timer = None
+        self._cancel_timer()
         if optics is not None:
             optics.shown_mask = index
         self.shown = index
+        self._shown()
+
+    def show_grey(self, grey: np.ndarray) -> None:
+        """Show a raw grey image (H, W) through the device's (true) response; see ``Modulator.show_grey``."""
+        self._check_open()
+        grey = np.asarray(grey)
+        if grey.ndim != 2 or not np.issubdtype(grey.dtype, np.integer):
+            raise DeviceMisconfigured(f"a grey image must be a 2-D integer array, got {grey.dtype} {grey.shape}",
+                                      device="modulator")
+        optics = self.context.optics
+        if optics is not None and tuple(grey.shape) != tuple(optics.grid_shape):
+            raise DeviceMisconfigured(f"grey image is {grey.shape[0]} x {grey.shape[1]} but the grid is "
+                                      f"{optics.grid_shape[0]} x {optics.grid_shape[1]}", device="modulator")
+        phase = self._phase_of_grey(grey)
+        self._cancel_timer()
+        if optics is not None:
+            optics.show_image(np.exp(1j * phase))
+        self.shown = None
+        self._shown()
+
+    def _cancel_timer(self) -> None:
+        if self._timer is not None:
+            self._timer.cancel()
+            self._timer = None
+
+    def _shown(self) -> None:
+        optics = self.context.optics
         self._shown_at = time.monotonic()
         if optics is not None and self.settings.trigger_output:
             if self.settings.settle_s <= 0:

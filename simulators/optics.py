@@ -28,7 +28,10 @@ from typing import Callable
 
 import numpy as np
 
-__all__ = ["SimulatedOptics"]
+__all__ = ["SimulatedOptics", "CUSTOM_IMAGE"]
+
+#: ``shown_mask`` value while the modulator shows an image outside the mask set (``show_image``).
+CUSTOM_IMAGE = -1
 
 StateListener = Callable[[str, object], None]
 
@@ -46,6 +49,9 @@ class SimulatedOptics:
     mask_offset_px: (rows, cols) displacement of the modulator image on the field, in grid
         pixels: a misregistered modulator. The masks given are the designed ones; the field
         sees ``maskrun.reconstruct.masks.shift_masks(masks, mask_offset_px)``. (0, 0) = registered.
+    slm_response: the simulated SLM's TRUE grey level -> phase table (a ``ModulatorProfile``), or None
+        (the modulator imposes what it is given). The optics only carries it; the simulated modulator
+        (``simulators.modulator``) turns the grey levels it is driven with into phases through it.
 
     State (properties, lock-protected): ``shutter_open`` (False at start),
     ``interlock_closed`` (True at start = doors shut, safe), ``shown_mask``
@@ -56,7 +62,8 @@ class SimulatedOptics:
     close the shutter the moment the interlock opens.
     """
 
-    def __init__(self, sample, masks, photon_rate_per_s: float, sensor_shape, mask_offset_px=(0.0, 0.0)):
+    def __init__(self, sample, masks, photon_rate_per_s: float, sensor_shape, mask_offset_px=(0.0, 0.0),
+                 slm_response=None):
         sample = np.asarray(sample)
         masks = np.asarray(masks)
         if sample.ndim != 2:
@@ -88,6 +95,7 @@ class SimulatedOptics:
         self._sensor_shape = sensor
         self._photon_rate_per_s = rate
         self._mask_offset_px = (float(mask_offset_px[0]), float(mask_offset_px[1]))
+        self.slm_response = slm_response
         self._masks = self._landed(masks)
         self._sample = sample.astype(np.complex128, copy=True)
         self._scale = self._compute_scale()
@@ -97,6 +105,7 @@ class SimulatedOptics:
         self._shown_mask: int | None = None
         self._shared = None  # SharedBenchState when the firmware runs in its own processes
         self._triggers_consumed = 0
+        self._custom: np.ndarray | None = None
 
     def attach_shared(self, shared) -> None:
         """Keep the shutter, interlock, shown mask and trigger line in ``shared`` (a
@@ -192,7 +201,9 @@ class SimulatedOptics:
     def shown_mask(self, value: int | None) -> None:
         if value is not None:
             value = int(value)
-            if not 0 <= value < self.mask_count:
+            if value == CUSTOM_IMAGE and self._custom is None:
+                raise ValueError("no custom image to show: use show_image(mask) first")
+            if value != CUSTOM_IMAGE and not 0 <= value < self.mask_count:
                 raise ValueError(f"mask index {value} out of range 0..{self.mask_count - 1}")
         self._set("shown_mask", value)
 
@@ -257,6 +268,19 @@ class SimulatedOptics:
             if self._shown_mask is not None and self._shown_mask >= masks.shape[0]:
                 self._shown_mask = None
 
+    def show_image(self, mask) -> None:
+        """Put one complex (H, W) modulator image outside the mask set on the field (it lands displaced by
+        ``mask_offset_px`` like the masks); ``shown_mask`` becomes ``CUSTOM_IMAGE``. The photon scale is
+        the mask set's (same laser power), so a unit-modulus image sends the same photons as phase masks."""
+        mask = np.asarray(mask)
+        if mask.shape != self._grid_shape:
+            raise ValueError(f"image shape {mask.shape} does not match the grid shape {self._grid_shape}")
+        landed = self._landed(mask[None])[0]
+        with self._lock:
+            self._custom = landed
+            self._patterns.pop(CUSTOM_IMAGE, None)
+        self._set("shown_mask", CUSTOM_IMAGE)
+
     def truth_field(self) -> np.ndarray:
         """The sample in units of sqrt(photons/s) (complex128, grid shape).
 
@@ -272,7 +296,12 @@ class SimulatedOptics:
         """Fftshifted photon rate per grid pixel for one mask (cached; caller holds the lock)."""
         pattern = self._patterns.get(mask)
         if pattern is None:
-            field = self._sample if mask is None else self._masks[mask] * self._sample
+            if mask is None:
+                field = self._sample
+            elif mask == CUSTOM_IMAGE:
+                field = self._custom * self._sample
+            else:
+                field = self._masks[mask] * self._sample
             pattern = np.abs(np.fft.fft2(field, norm="ortho")) ** 2
             pattern *= self._scale
             pattern = np.fft.fftshift(pattern)

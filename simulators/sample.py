@@ -19,7 +19,7 @@ import dataclasses
 import numpy as np
 from scipy import ndimage
 
-__all__ = ["SampleTruth", "phase_target", "isolated_amplitude_target", "FUSED_SILICA_INDEX_633NM"]
+__all__ = ["SampleTruth", "phase_target", "isolated_amplitude_target", "bare_beam", "FUSED_SILICA_INDEX_633NM"]
 
 #: Refractive index of fused silica at 632.8 nm (from memory; Malitson 1965 formula gives 1.4570).
 FUSED_SILICA_INDEX_633NM = 1.457
@@ -99,8 +99,7 @@ def phase_target(shape, wavelength_m: float = 632.8e-9, *, refractive_index: flo
         depth = ndimage.gaussian_filter(depth, blur_px, mode="nearest")
         amplitude = ndimage.gaussian_filter(amplitude, blur_px, mode="nearest")
 
-    # Gaussian illumination, 1/e^2 intensity radius 0.45 of each side (amplitude exp(-r^2/w^2)).
-    envelope = np.exp(-(((u - 0.5) / 0.45) ** 2 + ((v - 0.5) / 0.45) ** 2))
+    envelope = _beam_envelope(h, w)
     thickness_m = -depth
     phase = 2 * np.pi * (refractive_index - 1.0) * thickness_m / wavelength_m
     field = (envelope * amplitude * np.exp(1j * phase)).astype(np.complex128)
@@ -140,3 +139,21 @@ def isolated_amplitude_target(shape, *, blur_px: float = 1.0) -> SampleTruth:
     return SampleTruth(field=obj.astype(np.complex128), thickness_m=np.zeros((h, w)),
                        description=f"isolated amplitude object {oh}x{ow} px (triangular opening, chromium "
                        f"features {CHROMIUM_AMPLITUDE}) on a {h}x{w} grid, opaque outside")
+
+
+def _beam_envelope(h: int, w: int) -> np.ndarray:
+    """Gaussian illumination centred on the grid, 1/e^2 intensity radius 0.45 of each side (amplitude exp(-r^2/w^2))."""
+    y, x = np.mgrid[0:h, 0:w].astype(np.float64)
+    u, v = y / h, x / w
+    return np.exp(-(((u - 0.5) / 0.45) ** 2 + ((v - 0.5) / 0.45) ** 2))
+
+
+def bare_beam(shape) -> np.ndarray:
+    """The illumination alone (sample removed): the test plate's Gaussian beam, complex128 (H, W), flat phase.
+
+    Symmetric about the grid centre (H/2, W/2), so its intensity centroid marks the centre of the field:
+    the position reference of the mask registration (``maskrun.reconstruct.registration``)."""
+    h, w = (int(s) for s in shape)
+    if h < 4 or w < 4:
+        raise ValueError(f"bare_beam needs a grid of at least 4 x 4 pixels, got {h} x {w}")
+    return _beam_envelope(h, w).astype(np.complex128)

@@ -21,6 +21,7 @@ import struct
 from pathlib import Path
 
 SIZE = 64
+_NO_MASK = -(2**31)  # shown_mask None (a blank modulator); -1 is the simulated optics' CUSTOM_IMAGE
 
 
 class SharedBenchState:
@@ -60,11 +61,11 @@ class SharedBenchState:
     @property
     def shown_mask(self) -> int | None:
         k = struct.unpack_from("<i", self._map, 4)[0]
-        return None if k < 0 else k
+        return None if k == _NO_MASK else k  # negative indices are real: CUSTOM_IMAGE (-1) is a shown image
 
     @shown_mask.setter
     def shown_mask(self, value: int | None) -> None:
-        struct.pack_into("<i", self._map, 4, -1 if value is None else int(value))
+        struct.pack_into("<i", self._map, 4, _NO_MASK if value is None else int(value))
 
     @property
     def triggers_fired(self) -> int:
