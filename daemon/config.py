@@ -105,6 +105,9 @@ class ResponseConfig(_Table):
     quantum_efficiency: float | None = Field(
         None, gt=0, le=1, description="data-sheet QE; required without a profile, or when the profile has none")
     profile: str | None = Field(None, description="camera profile file from 'maskrun calibrate'; overrides the values above")
+    prnu_fraction: float | None = Field(
+        None, ge=0, lt=0.3, description="data-sheet pixel-response spread (PRNU, std/mean); used for the precision "
+        "floor when no flat field is applied (unknown when not given)")
 
     @model_validator(mode="after")
     def _values_or_profile(self):

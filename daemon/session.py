@@ -94,6 +94,18 @@ def _earlier_live_data(path, rcfg) -> LiveData:
     return live
 
 
+def _log_precision_terms(store: RunStore, precision: dict | None) -> None:
+    """The last estimate's precision terms as one event (the estimate_info columns hold the totals)."""
+    if not precision:
+        return
+    terms = {k: (round(v, 6) if isinstance(v, float) else v) for k, v in precision.items()
+             if k in ("shot", "read", "dark", "response", "quantisation", "dominant", "unknown")}
+    try:
+        store.log("precision", "terms " + json.dumps(terms, separators=(",", ":")), "info")
+    except OSError:
+        pass
+
+
 def execute_run(
     bench: Bench,
     plan: RunPlan,
@@ -136,26 +148,35 @@ def execute_run(
         if own_recon and recon is not None:
             recon.close()
         raise
+    def log(kind: str, message: str, level: str = "info") -> None:
+        """Into the run log, and onto the stream as the sequencer's events are (warnings as alerts)."""
+        store.log(kind, message, level)
+        if publisher is not None:
+            publisher.publish("alert" if level in ("warning", "error") else "event",
+                              {"kind": kind, "level": level, "message": message})
+
     try:
         if append:
-            store.log("resume", f"resumed at pass {plan.first_pass} (set {plan.first_set_index}); {resume_note}".rstrip("; "),
+            log("resume", f"resumed at pass {plan.first_pass + 1} (set index {plan.first_set_index}); {resume_note}".rstrip("; "),
                       "warning")
-        store.log("safety_ack", f"laser-safety notice acknowledged by {ack.who} via {ack.how} at {ack.when_utc}")
+        log("safety_ack", f"laser-safety notice acknowledged by {ack.who} via {ack.how} at {ack.when_utc}")
         store.log("writer", f"pid {os.getpid()} on {socket.gethostname()}")
         for kind, message, level in extra_events:
-            store.log(kind, message, level)
+            log(kind, message, level)
         store.log("disk_plan", disk.describe(), "info")
         if disk.warning:
-            store.log("disk_warning", disk.warning, "warning")
+            log("disk_warning", disk.warning, "warning")
         darks = dark_advice(bench, plan)
         if darks:
-            store.log("dark_frames_few", darks, "warning")
+            log("dark_frames_few", darks, "warning")
         if recon is not None and earlier is not None and earlier.held:
             recon.preload(earlier)
             store.log("recon_preload", f"live reconstruction continues from the {earlier.held} frame set(s) "
                       "already in the file", "info")
         seq = Sequencer(bench, store, publisher, recon, plan, control, observer)
-        return seq.run()
+        summary = seq.run()
+        _log_precision_terms(store, seq._progress.precision)
+        return summary
     finally:
         try:
             bench.safety.close_shutter()
