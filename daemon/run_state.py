@@ -107,6 +107,8 @@ def precision_rows(prec: dict | None, true_error=None, shot_error=None) -> list[
     """Labelled rows of the precision estimate, the same on every display (see reconstruct.precision)."""
     rows: list[tuple[str, str]] = []
     if not prec:
+        if _finite(shot_error) is None and _finite(true_error) is None:
+            rows.append(("precision", "no estimate yet"))
         if _finite(shot_error) is not None:
             rows.append(("predicted (photon count only)", _pct(shot_error)))
         if _finite(true_error) is not None:
@@ -310,6 +312,15 @@ def state_from_file(path: str | Path) -> RunState:
     if state not in ("running", "unknown"):
         st.outcome = outcome_sentence(state, message, sets, passes)
     return st
+
+
+def precision_terms_message(precision: dict | None) -> str:
+    """The message of the run log's 'precision' event: the last estimate's terms, compact JSON ('' without)."""
+    if not precision:
+        return ""
+    terms = {k: (round(v, 6) if isinstance(v, float) else v) for k, v in precision.items()
+             if k in ("shot", "read", "dark", "response", "quantisation", "dominant", "unknown")}
+    return "terms " + json.dumps(terms, separators=(",", ":"))
 
 
 def _precision_detail(events: list[dict]) -> dict:

@@ -82,12 +82,22 @@ class RecordingSafetyBox:
         return value
 
     def open_shutter(self, *a, **k):
-        self.readings.command("open shutter")
-        return self._box.open_shutter(*a, **k)
+        return self._command("open shutter", self._box.open_shutter, a, k)
 
     def close_shutter(self, *a, **k):
-        self.readings.command("close shutter")
-        return self._box.close_shutter(*a, **k)
+        return self._command("close shutter", self._box.close_shutter, a, k)
+
+    def _command(self, what: str, fn, a, k):
+        """Send the command, then read the shutter back: a command is not a reading, so the reading
+        from before it is dropped, and the box is asked what it did."""
+        self.readings.command(what)
+        self.readings.record("shutter", None, f"not read since the command to {what}")
+        result = fn(*a, **k)
+        try:
+            self.shutter_is_open()
+        except Exception:
+            pass  # recorded as a failed reading: shown as unknown
+        return result
 
     def __getattr__(self, name):
         return getattr(self._box, name)

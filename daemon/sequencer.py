@@ -439,6 +439,10 @@ class Sequencer:
                     pass
             in_file = self.plan.first_pass + self.passes_complete
             try:
+                from .run_state import precision_terms_message
+
+                if self._progress.precision:  # the last estimate's precision terms, before the run's end record
+                    self.store.log("precision", precision_terms_message(self._progress.precision))
                 if final == State.finished:
                     self.event("run_end", f"run finished: {in_file} complete frame sets")
                 else:

@@ -94,18 +94,6 @@ def _earlier_live_data(path, rcfg) -> LiveData:
     return live
 
 
-def _log_precision_terms(store: RunStore, precision: dict | None) -> None:
-    """The last estimate's precision terms as one event (the estimate_info columns hold the totals)."""
-    if not precision:
-        return
-    terms = {k: (round(v, 6) if isinstance(v, float) else v) for k, v in precision.items()
-             if k in ("shot", "read", "dark", "response", "quantisation", "dominant", "unknown")}
-    try:
-        store.log("precision", "terms " + json.dumps(terms, separators=(",", ":")), "info")
-    except OSError:
-        pass
-
-
 def execute_run(
     bench: Bench,
     plan: RunPlan,
@@ -174,9 +162,7 @@ def execute_run(
             store.log("recon_preload", f"live reconstruction continues from the {earlier.held} frame set(s) "
                       "already in the file", "info")
         seq = Sequencer(bench, store, publisher, recon, plan, control, observer)
-        summary = seq.run()
-        _log_precision_terms(store, seq._progress.precision)
-        return summary
+        return seq.run()
     finally:
         try:
             bench.safety.close_shutter()
