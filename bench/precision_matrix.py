@@ -54,7 +54,9 @@ CONDITIONS = [
     Condition("PRNU 1 % uncorrected", darks=16),
     Condition("PRNU 1 % flat field", darks=16, flat=True),
     Condition("low photons (1/16)", darks=16, photons=1 / 16),
-    Condition("high photons (x8)", darks=16, photons=8.0),
+    Condition("high photons (x1.6, near full scale)", darks=16, photons=1.6),
+    # 8x the light saturates the 12-bit camera: the frames are flagged and the data misfit says so
+    Condition("saturating light (x8)", darks=16, photons=8.0, expect_misfit=True),
     Condition("PRNU unknown, no flat", darks=16, datasheet_prnu=False),
     Condition("misregistered 1 px", darks=16, offset_px=(1, 0), translation=True),
     Condition("misregistered 0.5 px", darks=16, offset_px=(0.5, 0), expect_misfit=True),

@@ -89,8 +89,6 @@ class AlertBook:
             self.add(meta)
         elif kind == "resumed":
             self.clear(PAUSE_KINDS)
-        elif kind == "run_start" and not str(meta.get("message", "")).startswith("run start: resumed"):
-            pass
 
 
 def alert_line(a: dict) -> str:

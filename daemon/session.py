@@ -144,6 +144,9 @@ def execute_run(
                               {"kind": kind, "level": level, "message": message})
 
     try:
+        if publisher is not None:  # first on the stream for this run: displays clear the last run's alerts here
+            publisher.publish("event", {"kind": "run_open", "level": "info", "resumed": bool(append),
+                                        "message": "run file reopened to resume" if append else "new run file"})
         if append:
             log("resume", f"resumed at pass {plan.first_pass + 1} (set index {plan.first_set_index}); {resume_note}".rstrip("; "),
                       "warning")

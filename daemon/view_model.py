@@ -66,6 +66,7 @@ class LiveViewState:
     _last_message_t: float | None = None
     _log_buf: np.ndarray | None = None
     _phase_cache: tuple | None = None
+    run_warnings: list = field(default_factory=list)  # (clock, kind, message) of this run's alerts; a new run clears
     service: dict = field(default_factory=dict)  # last periodic status of `maskrun serve` (empty: none seen)
     service_saturation_dn: float | None = None
 
@@ -108,9 +109,12 @@ class LiveViewState:
                 self.status["pass_index"] = meta["pass_index"]
             self.dirty.add("status")
         elif h.topic in ("alert", "event"):
+            if meta.get("kind") == "run_open" and not meta.get("resumed"):
+                self.run_warnings.clear()  # a new run: its alerts start here
             if h.topic == "alert":
-                self.alerts.append((time.strftime("%H:%M:%S", time.localtime(h.t_s)), meta.get("level", "warning"),
-                                    str(meta.get("message", ""))))
+                stamp = time.strftime("%H:%M:%S", time.localtime(h.t_s))
+                self.alerts.append((stamp, meta.get("level", "warning"), str(meta.get("message", ""))))
+                self.run_warnings.append((stamp, str(meta.get("kind", "")), str(meta.get("message", ""))))
             self.dirty.add("status")
 
     def _ingest_service_status(self, meta: dict) -> None:
@@ -250,8 +254,9 @@ class LiveViewState:
         if not self.alerts:
             return ""
         t, lvl, m = self.alerts[-1]
-        n = self.received["alert"]
-        return f"[{t}] {lvl}: {m}" + (f"   ({n} alerts so far)" if n > 1 else "")
+        n = len(self.run_warnings)
+        kinds = sorted({k for _, k, _ in self.run_warnings})
+        return f"[{t}] {lvl}: {m}" + (f"   ({n} alerts this run: {', '.join(kinds)})" if n > 1 else "")
 
 
 def _num(v) -> float:

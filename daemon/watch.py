@@ -51,6 +51,7 @@ class WatchModel:
     estimate_meta: dict = field(default_factory=dict)
     check_meta: dict = field(default_factory=dict)
     alerts: collections.deque = field(default_factory=lambda: collections.deque(maxlen=6))
+    run_warnings: list = field(default_factory=list)  # (t_s, kind, message) of this run's alerts (a new run clears)
     messages: int = 0
     bad_messages: int = 0
     gaps: dict = field(default_factory=dict)
@@ -80,12 +81,15 @@ class WatchModel:
         elif h.topic in ("alert", "event"):
             level = h.meta.get("level", "info")
             kind = str(h.meta.get("kind", ""))
-            if kind == "run_start" and "resumed" not in str(h.meta.get("message", "")):
+            if kind == "run_open" and not h.meta.get("resumed"):
                 self.alerts.clear()  # a new run: alerts belong to the run they were raised in
+                self.run_warnings.clear()
             elif kind == "resumed":  # the pause alerts it answers no longer hold
                 kept = [a for a in self.alerts if a[3] not in PAUSE_KINDS]
                 self.alerts.clear()
                 self.alerts.extend(kept)
+            if h.topic == "alert":
+                self.run_warnings.append((h.t_s, kind, str(h.meta.get("message", ""))))
             if h.topic == "alert" or kind in SHOWN_EVENTS:
                 self.alerts.append((h.t_s, level, str(h.meta.get("message", "")), kind))
 
@@ -288,6 +292,9 @@ def render(model: WatchModel, image_cols: int = 40, image_rows: int = 32, now_s:
             rows += run_rows(last)
         elif check:
             rows.append(("last check", ", ".join(check.get("problems", [])) or "ok"))
+    if model.run_warnings:
+        kinds = collections.Counter(k for _, k, _ in model.run_warnings)
+        rows.append(("warnings this run", ", ".join(f"{k} x{n}" if n > 1 else k for k, n in kinds.items())))
     dose = st.get("dose") or {}
     rows += [("photons (service)", _fmt(dose.get("photons_total"), ".3g")),
              ("dose (service)", f"{_fmt(dose.get('energy_j'), '.3g')} J"),
