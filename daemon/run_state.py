@@ -249,11 +249,13 @@ def outcome_sentence(state: str, message: str, sets: int, passes: int | None) ->
     if state == "finished":
         return f"Finished: {of} frame sets complete."
     why = message.strip()
-    for prefix in (f"run {state}: ", f"{state} "):
-        if why.startswith(prefix):
-            why = why[len(prefix):]
-    why = why.split("; continue with")[0].strip()
-    head = state.capitalize() + (f" ({why})" if why else "")
+    if why.startswith(f"run {state}: "):
+        why = why[len(f"run {state}: "):]
+    why = why.split("; ")[0].strip()  # the reason; the counts and the advice are said below
+    if why.lower().startswith(state):
+        head = why[0].upper() + why[1:]  # 'Stopped by a control request', not 'stopped stopped ...'
+    else:
+        head = state.capitalize() + (f" ({why})" if why else "")
     return f"{head} after {of} frame sets; continue with 'maskrun resume FILE'."
 
 

@@ -194,3 +194,59 @@ def test_stream_flags_are_the_files_bitmask(run):
     assert int(truth["flags"][-1]) == meta["flags"]
     assert int(np.bitwise_or.reduce(truth["flags"])) & 1024  # the interlock pause is flagged in the file
 
+
+
+def test_a_resumed_run_tells_every_acknowledgement_and_its_outcome_alike(tmp_path):
+    """Foreground: stopped after 2 of 4 sets with overrides, resumed; the summary, the report and the file's
+    account agree; the report lists both safety acknowledgements and explains after_resume as a resume."""
+    from benchcfg import small_bench_text
+    from maskrun.daemon.foreground import RunRequest, print_summary, resume_foreground
+    from maskrun.daemon.report import FLAG_EXPLANATIONS, write_report
+    from maskrun.daemon.run_state import state_from_file
+    from maskrun.daemon.sequencer import State
+    from test_faults import run_bench
+
+    text = small_bench_text(masks=4, passes=2, darks=1, recon_iterations=20)
+
+    def observer(p, bench, control):
+        if p.frames_done == 2 * 4:
+            control.request_stop("stopped by the test after two frame sets")
+
+    summary, _ = run_bench(tmp_path, text.replace("passes = 2", "passes = 4"), observer=observer)
+    assert summary.state == State.stopped
+    mid = state_from_file(summary.output_path)
+    assert mid.outcome.startswith("Stopped by the test after two frame sets after 2 of 4 frame sets")
+    console = Console(file=io.StringIO(), width=140)
+    resumed = resume_foreground(summary.output_path, RunRequest(acknowledge_unattended=True, figure=False), console)
+    assert resumed.state == State.finished, resumed.message
+    out = console.file.getvalue()
+    assert "computing the last estimates" in out  # a line while the last estimate is computed (item 8)
+    st = state_from_file(summary.output_path)
+    assert st.resumed and st.outcome == "Finished: 4 of 4 frame sets complete." and len(st.acknowledgements) == 2
+    with h5py.File(summary.output_path, "r", swmr=True) as f:
+        kinds = [k.decode() for k in f["entry/events"]["kind"]]
+        true_last = float(f["entry/estimate_info"]["true_error"][-1])
+    assert kinds.count("safety_ack") == 2
+    c = Console(file=io.StringIO(), width=160)
+    print_summary(resumed, c)
+    table = c.file.getvalue()
+    assert "Finished: 4 of 4 frame sets complete." in table and f"{true_last:.2%}" in table
+    page = write_report(summary.output_path).html.read_text()
+    assert "All 2 acknowledgement(s)" in page and page.count("laser-safety") >= 2
+    assert "resumed" in FLAG_EXPLANATIONS["after_resume"] and "pause" not in FLAG_EXPLANATIONS["after_resume"]
+
+
+def test_client_replies_and_outcomes_read_as_sentences():
+    from maskrun.daemon.client import reply_sentence
+    from maskrun.daemon.run_state import mask_label, outcome_sentence, pass_label
+
+    assert reply_sentence("stop", {"stopping": "run", "output_path": "runs/a.h5"}).startswith("Stopping the run")
+    assert reply_sentence("pause", {"pausing": True, "note": "x"}).startswith("Pausing:")
+    assert "{" not in reply_sentence("shutdown", {"shutting_down": True, "was": "idle"})
+    text = outcome_sentence("stopped", "run stopped: stopped by a control request; 3 complete frame sets kept; "
+                            "continue with: maskrun resume a.h5", 3, 12)
+    assert text == "Stopped by a control request after 3 of 12 frame sets; continue with 'maskrun resume FILE'."
+    assert outcome_sentence("fault", "run fault: camera unplugged; 0 complete frame sets kept", 0, 4).startswith(
+        "Fault (camera unplugged) after 0 of 4")
+    # one numbering convention: counted from 1 where people read it
+    assert pass_label(3, 12) == "pass 4/12" and mask_label(7, 8) == "mask 8/8" and pass_label(-1) == ""
