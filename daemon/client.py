@@ -165,3 +165,23 @@ class ServiceClient:
 
     def wait_idle(self, timeout_s: float = 600.0) -> dict:
         return self.wait_state("idle", timeout_s)
+
+
+def reply_sentence(verb: str, result: dict) -> str:
+    """A reply to a client verb as one sentence a person reads (not a dictionary)."""
+    r = result or {}
+    if verb == "pause":
+        return "Pausing: the run pauses before its next frame and the shutter closes while paused."
+    if verb == "resume":
+        return "Resumed: the run continues." if r.get("resumed") else "Nothing to resume."
+    if verb == "stop":
+        if r.get("stopping") == "run":
+            return (f"Stopping the run after its current frame; frames taken are kept in {r.get('output_path')} "
+                    "(shutter closes).")
+        if r.get("stopping") == "align":
+            return "Stopping align mode after its current frame (shutter closes)."
+    if verb == "shutdown":
+        return (f"Shutting down (the service was {r.get('was', 'idle')}): a run in progress is stopped, the shutter "
+                "closed and the devices closed.")
+    parts = ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in r.items())
+    return f"{verb.capitalize()}: done" + (f" ({parts})." if parts else ".")

@@ -187,28 +187,32 @@ def cmd_status(args) -> int:
 
 
 def _status_lines(st: dict) -> str:
+    from .run_state import alert_line, progress_line, run_rows
+    from .safety_readings import safety_text
+
     s = st.get("safety") or {}
+    inter, shutter = safety_text(s)
+    run = st.get("run")
+    exposure = (run or {}).get("exposure_s") or st.get("exposure_s")
     lines = [f"state: {st['state']}   control {st.get('control_address')}   stream {st.get('publish_address')}",
              f"notice acknowledged: {'yes (' + s['acknowledgement']['who'] + ')' if s.get('acknowledged') else 'NO'}"
-             f"   interlock: {'closed' if s.get('interlock_closed') else 'OPEN or unknown'}"
-             f"   shutter: {'open' if s.get('shutter_open') else 'closed'}   exposure {st.get('exposure_s')} s"]
-    run = st.get("run")
+             f"   interlock: {inter}   shutter: {shutter}"
+             f"   exposure {exposure:g} s {'(this run)' if run else '(next run)'}"]
     if run:
-        lines.append(f"run: {run['state']} {run['frames_done']}/{run['frames_total']} frames, "
-                     f"pass {run['pass_index'] + 1}/{run['passes']}, file {run['output_path']}")
-        if isinstance(run.get("error_estimate"), (int, float)):
-            # shot-noise rule: relative error ~ phase precision in radians for a field of even amplitude
-            lines.append(f"expected precision now: {run['error_estimate']:.3g} rad (relative error "
-                         f"{run['error_estimate']:.2%}, from the photons collected)")
+        lines.append(f"run: {run['state']}, {progress_line(run)}")
+        lines += [f"  {k}: {v}" for k, v in run_rows(run)]
     if st.get("align"):
         a = st["align"]
         lines.append(f"align: {a.get('frames', 0)} frames, {a.get('fps', 0):.1f} fps, peak {a.get('peak_dn')} DN, "
                      f"centroid {a.get('centroid_rc')}, total {a.get('total_counts_dn')} DN")
-    if st.get("last_run"):
+    if st.get("last_run") and not run:
         lr = st["last_run"]
-        lines.append(f"last run: {lr['state']} {lr.get('message') or ''} ({lr['frames']} frames) {lr['output_path']}")
+        lines.append(f"last run: {lr.get('outcome') or lr['state']} ({lr['frames']} frames)")
+        lines += [f"  {k}: {v}" for k, v in run_rows(lr)]
+        if lr.get("warnings"):
+            lines.append(f"  warnings in its log: {len(lr['warnings'])}, the last: {alert_line(lr['warnings'][-1])}")
     for a in st.get("recent_alerts", [])[-3:]:
-        lines.append(f"alert: {a.get('message')}")
+        lines.append(f"alert {alert_line(a)}")
     return "\n".join(lines)
 
 
@@ -260,8 +264,10 @@ def cmd_start(args) -> int:
 
 
 def cmd_simple(args) -> int:
+    from .client import reply_sentence
+
     r = _call(args, lambda c: c.request(args.verb_name))
-    Console(highlight=False).print(f"{args.verb_name}: " + ", ".join(f"{k} {v}" for k, v in r.items()))
+    Console(highlight=False).print(reply_sentence(args.verb_name, r), markup=False)
     return 0
 
 

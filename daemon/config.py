@@ -134,6 +134,9 @@ class ResponseConfig(_Table):
     bit_depth: int | None = Field(None, ge=1, le=32, description="ADC bits: without a profile, 'maskrun plan' takes "
                                   "the saturation capacity from them, the offset and the gain (default: "
                                   "[camera.settings] bit_depth when the driver has one)")
+    prnu_fraction: float | None = Field(
+        None, ge=0, lt=0.3, description="data-sheet pixel-response spread (PRNU, std/mean); used for the precision "
+        "floor when no flat field is applied (unknown when not given)")
 
     @model_validator(mode="after")
     def _values_or_profile(self):

@@ -33,6 +33,8 @@ LINE_STYLES = {
     "true_error": ("#0072B2", "o", "-"),  # blue
     "error_estimate": ("#E69F00", "s", "--"),  # orange
     "residual": ("#009E73", "^", ":"),  # bluish green
+    "error_reported": ("#CC79A7", "D", "-."),  # reddish purple
+    "error_predicted": ("#56B4E9", "v", "--"),  # sky blue
     "photons": ("#0072B2", ".", "-"),
     "saturation": ("#D55E00", ".", "-"),  # vermillion
 }
@@ -40,6 +42,8 @@ LINE_LABELS = {
     "true_error": "error against the known sample (simulation)",
     "error_estimate": "error predicted from the photon count",
     "residual": "data residual (measured vs. modelled frames)",
+    "error_reported": "precision from the data (misfit)",
+    "error_predicted": "predicted: photon count + floors",
 }
 
 

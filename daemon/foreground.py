@@ -103,6 +103,9 @@ def describe_plan(bench, plan: RunPlan) -> list[str]:
     return lines
 
 
+from .run_state import pass_label, precision_headline  # noqa: E402  (one wording for every display)
+
+
 def _hms(seconds: float) -> str:
     seconds = int(round(seconds))
     return f"{seconds // 3600:d} h {seconds % 3600 // 60:02d} min" if seconds >= 3600 else f"{seconds // 60:d} min {seconds % 60:02d} s"
@@ -216,13 +219,19 @@ def _run(cfg, req, bench, plan: RunPlan, ack, console: Console, *, append: bool 
                         progress.console.print(f"[bold red]PAUSED[/] {time.strftime('%H:%M:%S')}: {escape(p.message)}")
                     elif p.state.value == "acquiring" and p.message.startswith("resumed"):
                         progress.console.print(f"[bold green]RESUMED[/] {time.strftime('%H:%M:%S')}: {escape(p.message)}")
+                    elif p.state.value == "finishing":
+                        progress.console.print(f"{time.strftime('%H:%M:%S')} all frames taken, shutter closed; "
+                                               "computing the last estimates...")
                 detail = p.state.value
                 if p.pass_index >= 0:
-                    detail += f" pass {p.pass_index + 1}/{plan.passes}"
+                    detail += f" {pass_label(p.pass_index, plan.passes)}"
+                if p.state.value == "finishing" and p.estimates_waiting:
+                    detail += f", {p.estimates_waiting} estimate(s) to come"
+                head = precision_headline(p.precision, p.estimate_error_estimate)
+                if head:
+                    detail += f" {head}"
                 if np.isfinite(p.estimate_true_error):
-                    detail += f" error {p.estimate_true_error:.2%}"
-                elif np.isfinite(p.estimate_error_estimate):
-                    detail += f" est. error {p.estimate_error_estimate:.2%}"
+                    detail += f" (vs truth {p.estimate_true_error:.2%})"
                 progress.update(task, completed=p.frames_done, detail=detail)
 
             summary = execute_run(bench, plan, ack, publisher=pub, zmq_context=ctx, control=control,
@@ -248,10 +257,21 @@ def _run(cfg, req, bench, plan: RunPlan, ack, console: Console, *, append: bool 
 
 
 def print_summary(summary: RunSummary, console: Console) -> None:
+    """The summary table: the run's counts, and the file's account of its outcome and precision (run_state)."""
+    from .run_state import precision_rows, state_from_file
+
+    try:
+        told = state_from_file(summary.output_path).to_dict()
+    except Exception:  # no file: the counts are all there is
+        told = {}
     t = Table(title="Run summary", show_header=False)
     t.add_column(style="bold")
     t.add_column()
-    t.add_row("outcome", escape(summary.state.value + (f" ({summary.message})" if summary.message else "")))
+    t.add_row("outcome", escape(told.get("outcome") or summary.state.value
+                                + (f" ({summary.message})" if summary.message else "")))
+    if told:
+        t.add_row("exposure (as used)", f"{told['exposure_s']:g} s" if told.get("exposure_s") else "unknown")
+        t.add_row("passes planned, dark frames", f"{told.get('passes')}, {told.get('dark_frames')}")
     t.add_row("frame sets complete", str(summary.passes_complete))
     t.add_row("frames taken", f"{summary.frames} (+ {summary.darks} dark)")
     t.add_row("frames refused", f"{summary.rejected} (stale or repeated frame ids, retaken)"
@@ -262,10 +282,13 @@ def print_summary(summary: RunSummary, console: Console) -> None:
     t.add_row("frames flagged", f"{summary.flagged} ({summary.saturated_frames} over the saturation limit)")
     t.add_row("photons per frame", f"{summary.photons_per_frame_mean:.3g} (incident, dark-subtracted)")
     t.add_row("estimates", str(summary.estimates))
-    if np.isfinite(summary.final_true_error):
-        t.add_row("reconstruction error vs truth", f"{summary.final_true_error:.2%}")
-    if np.isfinite(summary.final_error_estimate):
-        t.add_row("predicted error (photon count)", f"{summary.final_error_estimate:.2%}")
+    rows = precision_rows(told.get("precision"), told.get("true_error"), told.get("error_estimate")) if told else []
+    if not rows:
+        rows = precision_rows(None, summary.final_true_error, summary.final_error_estimate)
+    for label, value in rows:
+        t.add_row(label, escape(value))
+    if told.get("warnings"):
+        t.add_row("warnings in the run log", escape(f"{len(told['warnings'])}; the last: {told['warnings'][-1]['message']}"))
     if np.isfinite(summary.final_residual):
         t.add_row("data residual", f"{summary.final_residual:.3g}")
     t.add_row("wall time", f"{summary.wall_s:.1f} s")

@@ -203,8 +203,10 @@ class ReconLink:
                              f"this link runs {self.options.mode!r} window {self.options.window}")
         self.live = live
 
-    def submit(self, pass_index: int, intensities: np.ndarray, exposure_s: float, quantum_efficiency: float) -> bool:
-        """Queue one frame set (K, H, W) float32 detected photons, grid orientation. False if skipped."""
+    def submit(self, pass_index: int, intensities: np.ndarray, exposure_s: float, quantum_efficiency: float,
+               noise: dict | None = None) -> bool:
+        """Queue one frame set (K, H, W) float32 detected photons, grid orientation. False if skipped.
+        noise: what is known about the data's noise (reconstruct.precision.NoiseModel fields)."""
         intensities = np.ascontiguousarray(intensities, dtype=np.float32)
         intensities, data_passes = self.live.add(intensities)
         hdr = FrameSetHeader(
@@ -216,6 +218,7 @@ class ReconLink:
             masks=self.mask_spec,
             options=self.options,
             data_passes=data_passes,
+            noise=noise,
         )
         parts = [b"frameset", hdr.model_dump_json().encode(), memoryview(intensities).cast("B")]
         if self.mask_spec.family == "file":

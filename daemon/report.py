@@ -52,7 +52,11 @@ FLAG_EXPLANATIONS = {
     "frame_id_gap": "the camera's frame counter jumped (a frame lost in the camera)",
     "timeout_retried": "the camera timed out at least once before this frame",
     "exposure_shortened": "exposure shortened after saturation",
-    "after_resume": "first frames after a pause",
+    "after_resume": "first frame set after the run file was resumed (a gap in time precedes it)",
+    "modulator_retried": "the modulator needed more than one command to show this mask",
+    "reconnected": "a device was reconnected while taking this frame",
+    "after_pause": "the run was paused (fault or request) while taking this frame",
+    "shutter_closed": "refused frame: the shutter was found closed after the exposure",
 }
 
 
@@ -83,6 +87,8 @@ class RunStory:
     config_toml: str
     complete_sets: int
     flag_counts: dict[str, int] = field(default_factory=dict)
+    state: dict = field(default_factory=dict)  # run_state.state_from_file: the account every display shows
+    run_plan: dict = field(default_factory=dict)  # the plan as used (overrides included), from the file
 
     @property
     def warnings(self) -> list[dict]:
@@ -141,8 +147,12 @@ def read_story(run_path: str | Path) -> RunStory:
             acknowledgement=ack,
             config_toml=rf.config_toml if "config_toml" in attrs else "",
             complete_sets=len(rf.complete_sets()),
+            run_plan=rf.run_plan or {},
         )
     story.outcome, story.outcome_message = _outcome(events)
+    from .run_state import state_from_file
+
+    story.state = state_from_file(run_path).to_dict()
     starts = [e["t_s"] for e in events] + ([float(info["t_request_s"][0])] if len(info) else [])
     story.t0_s = min(starts) if starts else 0.0
     for bit, name in FLAG_NAMES.items():
@@ -189,6 +199,42 @@ def _planned_passes(story: RunStory) -> int | None:
     return None
 
 
+def _exposure_used(story: RunStory, cam: dict) -> str:
+    """The exposure the run used (its frames'), not the config file's when an override changed it."""
+    used = story.state.get("exposure_s")
+    if used:
+        return f"{used:g}" + (f" (config {cam.get('exposure_s')})" if cam.get("exposure_s") not in (None, used) else "")
+    return str(cam.get("exposure_s", "?"))
+
+
+def overrides_used(story: RunStory) -> list[tuple[str, str, str]]:
+    """(setting, value the run used, value in the stored config) for the run settings an override may change."""
+    import tomllib
+
+    try:
+        cfg = tomllib.loads(story.config_toml) if story.config_toml else {}
+    except tomllib.TOMLDecodeError:
+        cfg = {}
+    plan = story.run_plan
+    rows = []
+    for key, table in (("passes", "run"), ("dark_frames", "run"), ("exposure_s", "camera"), ("interval_s", "run")):
+        if key in plan:
+            rows.append((f"{key}", str(plan[key]), str(cfg.get(table, {}).get(key, "(not set)"))))
+    used = story.state.get("exposure_s")
+    if used and str(used) != str(plan.get("exposure_s")):
+        rows.append(("exposure_s at the end (shortened after saturation)", f"{used:g}", "-"))
+    return rows
+
+
+def _acknowledgement_lines(story: RunStory) -> list[str]:
+    """Every safety acknowledgement of the run: the first (stored in full) and one per resume (run log)."""
+    acks = story.state.get("acknowledgements") or []
+    if not acks:
+        return []
+    return [f"  {i + 1}. {a['message'][len('laser-safety notice '):] if a['message'].startswith('laser-safety notice ') else a['message']}"
+            for i, a in enumerate(acks)]
+
+
 def _config_summary(story: RunStory) -> list[str]:
     import tomllib
 
@@ -203,9 +249,10 @@ def _config_summary(story: RunStory) -> list[str]:
         f"({cfg.get('masks', {}).get('family', '?')})",
         f"laser {story.wavelength_m * 1e9:.1f} nm, {cfg.get('laser', {}).get('power_w', '?')} W, "
         f"class {cfg.get('laser', {}).get('laser_class', '?')}",
-        f"camera '{cam.get('driver', '?')}', exposure {cam.get('exposure_s', '?')} s, {story.bit_depth} bit",
+        f"camera '{cam.get('driver', '?')}', exposure {_exposure_used(story, cam)} s, {story.bit_depth} bit",
         f"modulator '{mod.get('driver', '?')}', safety box '{saf.get('driver', '?')}'",
-        f"passes planned {_planned_passes(story) or run.get('passes', '?')}, dark frames {story.dark_count}",
+        f"passes planned {story.state.get('passes') or _planned_passes(story) or run.get('passes', '?')}, "
+        f"dark frames {story.dark_count} taken ({story.run_plan.get('dark_frames', '?')} per session planned)",
         f"reconstruction {rec.get('mode', 'default')}, {rec.get('iterations_per_update', '?')} iterations per update",
     ]
     if "simulation" in cfg:
@@ -231,14 +278,14 @@ def render_report_png(run_path: str | Path, png_path: str | Path, story: RunStor
     n_frames = len(s.frame_info)
     colour = {"finished": "black"}.get(s.outcome, _VERMILLION)
     fig.text(0.05, 0.975, f"maskrun run report: {s.run_name}", fontsize=17, weight="bold", va="top")
-    fig.text(0.05, 0.948, f"outcome: {s.outcome}  ({s.outcome_message})", fontsize=12, color=colour, va="top",
-             weight="bold")
+    fig.text(0.05, 0.948, f"outcome: {s.state.get('outcome') or s.outcome}   {_precision_phrase(s)}", fontsize=12,
+             color=colour, va="top", weight="bold")
     sat_frames = s.flag_counts.get("saturated", 0)
     photons = float(np.sum(np.maximum(s.frame_info["photons"], 0))) if n_frames else 0.0
     fig.text(0.05, 0.928,
              f"started {s.created_utc}   |   {n_frames} frames + {s.dark_count} dark, {s.complete_sets} complete "
              f"frame sets of {s.mask_count}   |   {len(s.warnings)} warnings/errors in the log   |   "
-             f"{sat_frames} frames flagged saturated   |   {photons:.3g} photons detected in total   |   "
+             f"{sat_frames} frames flagged saturated   |   {photons:.3g} incident photons in total (dark-subtracted)   |   "
              f"file {s.path.name}", fontsize=9.5, va="top", color=_GREY)
 
     # --- row 1: images ------------------------------------------------------------------
@@ -288,7 +335,9 @@ def render_report_png(run_path: str | Path, png_path: str | Path, story: RunStor
     ei = s.estimate_info
     if len(ei):
         passes = ei["pass_index"] + 1
-        for key in ("true_error", "error_estimate", "residual"):
+        for key in ("true_error", "error_reported", "error_predicted", "error_estimate", "residual"):
+            if key not in ei.dtype.names:
+                continue
             vals = np.asarray(ei[key], dtype=float)
             ok = np.isfinite(vals) & (vals > 0)
             if ok.any():
@@ -364,6 +413,9 @@ def render_report_png(run_path: str | Path, png_path: str | Path, story: RunStor
                   f"  at {ack.get('when_utc', '?')}",
                   f"  via {ack.get('how', '?')}",
                   f"  laser class {ack.get('laser_class', '?')}, {ack.get('power_w', '?')} W"]
+        more = _acknowledgement_lines(s)
+        if len(more) > 1:
+            lines += [f"  all {len(more)} acknowledgements (first, then one per resume):"] + more
     else:
         lines.append("  NONE RECORDED in this file")
     lines += ["", "Settings (full config in the HTML page)"] + ["  " + t for t in _config_summary(s)]
@@ -373,6 +425,16 @@ def render_report_png(run_path: str | Path, png_path: str | Path, story: RunStor
     fig.savefig(png_path, dpi=90)
     plt.close(fig)
     return png_path
+
+
+def _precision_phrase(s: RunStory) -> str:
+    from .run_state import precision_headline
+
+    st = s.state
+    head = precision_headline(st.get("precision"), st.get("error_estimate"))
+    if st.get("true_error") is not None:
+        head += f"; error vs truth {st['true_error']:.2%}"
+    return head
 
 
 def _draw_timeline(ax, s: RunStory, scale: float, unit: str) -> None:
@@ -449,7 +511,7 @@ def render_report_html(story: RunStory, png_path: Path, html_path: Path) -> Path
     out = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>maskrun report: {e(s.run_name)}"
            f"</title><style>{_CSS}</style></head><body>",
            f"<h1>maskrun run report: {e(s.run_name)}</h1>",
-           f"<p class='{cls}'>Outcome: {e(s.outcome)} &mdash; {e(s.outcome_message)}</p>",
+           f"<p class='{cls}'>Outcome: {e(s.outcome)} &mdash; {e(s.state.get('outcome') or s.outcome_message)}</p>",
            f"<p class='muted'>File {e(str(s.path))}; started {e(s.created_utc)}; report written "
            f"{e(time.strftime('%Y-%m-%dT%H:%M:%SZ', time.gmtime()))}.</p>",
            f"<img src='data:image/png;base64,{png_b64}' alt='run report figure for {e(s.run_name)}'>"]
@@ -460,12 +522,14 @@ def render_report_html(story: RunStory, png_path: Path, html_path: Path) -> Path
             ("estimates", str(len(s.estimate_info))),
             ("warnings / errors in the log", str(len(s.warnings))),
             ("flagged frames", ", ".join(f"{k}: {v}" for k, v in s.flag_counts.items()) or "none")]
+    rows.append(("incident photons in total (dark-subtracted)", f"{s.state.get('photons_total') or 0:.4g}"))
     if len(s.estimate_info):
+        from .run_state import precision_rows
+
         last = s.estimate_info[-1]
         rows.append(("final data residual", f"{last['residual']:.4g}"))
-        rows.append(("final predicted error (photon count)", f"{last['error_estimate']:.4g}"))
-        if np.isfinite(last["true_error"]):
-            rows.append(("final error against the known sample", f"{last['true_error']:.4g}"))
+        rows += [(f"final {k}", v) for k, v in precision_rows(s.state.get("precision"), s.state.get("true_error"),
+                                                              s.state.get("error_estimate"))]
     out.append("<h2>Summary</h2><table>" + "".join(f"<tr><th>{e(a)}</th><td>{e(b)}</td></tr>" for a, b in rows)
                + "</table>")
     if s.flag_counts:
@@ -476,12 +540,20 @@ def render_report_html(story: RunStory, png_path: Path, html_path: Path) -> Path
     # per pass
     if len(s.estimate_info):
         out.append("<h2>Reconstruction per pass</h2><table><tr><th>pass</th><th>frame sets used</th>"
-                   "<th>data residual</th><th>predicted error</th><th>error against known sample</th>"
+                   "<th>data residual</th><th>precision (from the data)</th><th>predicted (photon count + floors)"
+                   "</th><th>chi2/dof</th><th>photon count only</th><th>error against known sample</th>"
                    "<th>iterations</th><th>photons used</th><th>solve time (s)</th></tr>")
+        names = s.estimate_info.dtype.names
+
+        def cell(r, key):
+            return f"{r[key]:.4g}" if key in names and np.isfinite(r[key]) else "&ndash;"
+
         for r in s.estimate_info:
-            te = f"{r['true_error']:.4g}" if np.isfinite(r["true_error"]) else "&ndash;"
+            te = cell(r, "true_error")
             out.append(f"<tr><td>{int(r['pass_index']) + 1}</td><td>{int(r['passes_used'])}</td>"
-                       f"<td>{r['residual']:.4g}</td><td>{r['error_estimate']:.4g}</td><td>{te}</td>"
+                       f"<td>{r['residual']:.4g}</td><td>{cell(r, 'error_reported')}</td>"
+                       f"<td>{cell(r, 'error_predicted')}</td><td>{cell(r, 'misfit_chi2_dof')}</td>"
+                       f"<td>{r['error_estimate']:.4g}</td><td>{te}</td>"
                        f"<td>{int(r['iterations'])}</td><td>{r['photons']:.4g}</td><td>{r['elapsed_s']:.3g}</td></tr>")
         out.append("</table>")
     # run log
@@ -502,9 +574,21 @@ def render_report_html(story: RunStory, png_path: Path, html_path: Path) -> Path
             if k in ack) + "</table>")
         if ack.get("notice"):
             out.append("<p>Notice as shown:</p><pre>" + e("\n".join(ack["notice"])) + "</pre>")
+        more = _acknowledgement_lines(s)
+        if more:
+            out.append(f"<p>All {len(more)} acknowledgement(s) of this run file (the first, then one per resume):</p>"
+                       "<ul>" + "".join(f"<li>{e(m.strip())}</li>" for m in more) + "</ul>")
     else:
         out.append("<p class='bad'>No acknowledgement recorded in this file.</p>")
-    out.append("<h2>Config (as used)</h2><pre>" + e(s.config_toml or "(none stored)") + "</pre>")
+    over = overrides_used(s)
+    out.append("<h2>Config (as used)</h2>")
+    if over:
+        out.append("<p>Run settings as used (command-line or request overrides win over the stored config):</p>"
+                   "<table><tr><th>setting</th><th>used</th><th>in the config file</th></tr>"
+                   + "".join(f"<tr><td>{e(a)}</td><td>{e(b)}</td><td>{e(c)}</td></tr>" for a, b, c in over)
+                   + "</table>")
+    out.append("<p>The config file as stored (before the overrides above):</p><pre>"
+               + e(s.config_toml or "(none stored)") + "</pre>")
     out.append("</body></html>")
     html_path = Path(html_path)
     html_path.write_text("\n".join(out), encoding="utf-8")

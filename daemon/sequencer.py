@@ -219,9 +219,21 @@ class Progress:
     estimate_error_estimate: float = float("nan")
     estimate_residual: float = float("nan")
     message: str = ""
+    precision: dict | None = None  # reconstruct.precision.PrecisionEstimate.to_dict() of the last estimate
+    estimates_waiting: int = 0  # frame sets sent to the reconstruction whose estimate has not come back
+    exposure_s: float = float("nan")  # the exposure in use (it may have been shortened after saturation)
 
 
 STOP_ESTIMATE_WAIT_S = 5.0  # after a stop or fault, wait at most this long for estimates of sets already taken
+
+# estimate_info column -> key of reconstruct.precision.PrecisionEstimate.to_dict()
+PRECISION_COLUMNS = {"error_predicted": "predicted", "error_data": "data", "misfit_chi2_dof": "chi2_dof",
+                     "error_reported": "reported"}
+
+
+def _nan_if_none(v) -> float:
+    return float("nan") if v is None else float(v)
+
 
 _DEVICE_ATTR = {"camera": "camera", "modulator": "modulator", "safety": "safety"}
 
@@ -275,7 +287,9 @@ class Sequencer:
         self.refused = 0
         self.last_estimate = (float("nan"), float("nan"), float("nan"))  # true error, error estimate, residual
         self._unfixable = False  # set when the first frame cannot be taken for a reason a resume repeats
-        self._progress = Progress(State.idle, -1, -1, 0, (plan.passes - plan.first_pass) * self.k)
+        self.read_noise_e: float | None = None  # measured from this run's dark frames (2 or more)
+        self._progress = Progress(State.idle, -1, -1, 0, (plan.passes - plan.first_pass) * self.k,
+                                  exposure_s=self.exposure_s)
         # one reusable frame-set buffer (K, H, W) float32, grid orientation
         self._set_buffer = np.zeros((self.k, *bench.grid_shape), dtype=np.float32)
         self._set_exposures = np.zeros(self.k, dtype=np.float64)
@@ -375,7 +389,7 @@ class Sequencer:
             except Exception:
                 self._roi = None
             todo = self.plan.passes - self.plan.first_pass
-            what = (f"resumed at pass {self.plan.first_pass}: {todo} of {self.plan.passes} passes to go"
+            what = (f"resumed at pass {self.plan.first_pass + 1}: {todo} of {self.plan.passes} passes to go"
                     if self.plan.resumed else f"{self.plan.passes} passes")
             series = f", a frame set every {self.plan.interval_s:g} s" if self.plan.interval_s else ""
             self.event("run_start", f"run start: {what} x {self.k} masks, exposure {self.exposure_s:g} s{series}")
@@ -391,6 +405,11 @@ class Sequencer:
                     raise RunAborted(self.control.stop_reason)
             self._set_state(State.finishing)
             self.bench.safety.close_shutter()
+            waiting = len(self.recon.outstanding) + len(self.recon._pending) if self.recon is not None else 0
+            if waiting:
+                self._progress.estimates_waiting = waiting
+                self.event("estimates_wait", f"all frames taken, shutter closed; computing the estimates of the last "
+                           f"{waiting} frame set(s) (up to 30 s)")
             self._collect_estimates(timeout_s=30.0, drain=True)
         except DiskSpaceError as exc:
             final, message = State.stopped, str(exc)
@@ -428,6 +447,10 @@ class Sequencer:
                     pass
             in_file = self.plan.first_pass + self.passes_complete
             try:
+                from .run_state import precision_terms_message
+
+                if self._progress.precision:  # the last estimate's precision terms, before the run's end record
+                    self.store.log("precision", precision_terms_message(self._progress.precision))
                 if final == State.finished:
                     self.event("run_end", f"run finished: {in_file} complete frame sets")
                 else:
@@ -505,6 +528,7 @@ class Sequencer:
         while True:
             while not self.control.wait_resume(0.2):
                 self._collect_estimates(0.0)
+                self._read_safety_while_paused()
                 if timeout and time.monotonic() - t0 > timeout:
                     raise RunAborted(f"paused for {timeout:g} s without a resume ({reason}): stopped safely")
             self._check_stop()
@@ -523,6 +547,19 @@ class Sequencer:
             break
         self.event("resumed", f"resumed after a {time.monotonic() - t0:.1f} s pause ({reason})")
         self._set_state(previous)
+
+    def _read_safety_while_paused(self) -> None:
+        """Keep reading the interlock and shutter about once a second while paused, so the status shows
+        what the box says now (see safety_readings); a failed read is left to the resume check."""
+        now = time.monotonic()
+        if now - getattr(self, "_paused_read_t", 0.0) < 1.0:
+            return
+        self._paused_read_t = now
+        try:
+            self.bench.safety.interlock_closed()
+            self.bench.safety.shutter_is_open()
+        except DeviceError:
+            pass
 
     # --- devices with retries, backoff and reconnects ----------------------------
     def _backoff(self):
@@ -731,6 +768,7 @@ class Sequencer:
         self._set_state(State.darks)
         self.bench.safety.close_shutter()
         acc = np.zeros(self.bench.grid_shape, dtype=np.float64)
+        acc_sq = np.zeros(self.bench.grid_shape, dtype=np.float64)  # for the read noise (precision estimate)
         for i in range(count):
             self._check_pause()
             self.disk.check()
@@ -747,8 +785,12 @@ class Sequencer:
             )
             self.store.flush()
             acc += frame.pixels
+            acc_sq += np.square(frame.pixels, dtype=np.float64)
             self.darks += 1
         self.dark_dn = (acc / count).astype(np.float32)
+        if count > 1:  # temporal noise of one dark frame, mean over pixels, DN -> electrons
+            var_dn = np.maximum(acc_sq - acc * acc / count, 0.0).sum() / ((count - 1) * acc.size)
+            self.read_noise_e = float(np.sqrt(var_dn)) / float(self.bench.response.gain_dn_per_e)
         self.event("darks", f"{count} dark frames taken, mean level {float(self.dark_dn.mean()):.1f} DN")
 
     def _check_dose_before(self) -> None:
@@ -786,7 +828,7 @@ class Sequencer:
             self.disk.check()
             self._check_dose_before()
             self._ensure_light()
-            self._call("modulator", lambda: mod.show(k), f"showing mask {k}")
+            self._call("modulator", lambda: mod.show(k), f"showing mask {k + 1}")
             if mod.settle_s > 0:
                 time.sleep(mod.settle_s)
             timeout = self.exposure_s + self.bench.config.camera.grab_timeout_s
@@ -795,7 +837,7 @@ class Sequencer:
             if not self._call("safety", self.bench.safety.shutter_is_open, "reading the shutter"):
                 self._refuse(frame, p, k, set_index, t_req, flags | FLAG_SHUTTER_CLOSED, attempts)
                 self._frame_flags |= FLAG_RETAKEN
-                self._fault("shutter_closed", f"pass {p} mask {k}: the shutter was found closed after the exposure "
+                self._fault("shutter_closed", f"pass {p + 1} mask {k + 1}: the shutter was found closed after the exposure "
                             "(interlock?): frame kept in /entry/refused and retaken")
                 continue
             chk = check_frame(frame.pixels, self.dark_dn, self.bench.response, self.limits, self.flat)
@@ -803,7 +845,7 @@ class Sequencer:
             if chk.saturated_fraction > self.limits.max_saturated_fraction and action != "flag":
                 if action == "stop":
                     self._stop_after_frame = (
-                        f"saturation: {chk.saturated_fraction:.2%} of the pixels of pass {p} mask {k} saturated "
+                        f"saturation: {chk.saturated_fraction:.2%} of the pixels of pass {p + 1} mask {k + 1} saturated "
                         f"(limit {self.limits.max_saturated_fraction:.2%}); stopped as configured "
                         "(saturation_action = 'stop'). Lower the exposure or attenuate the beam")
                 elif shortenings < self.bench.config.checks.saturation_max_shortenings:
@@ -817,7 +859,7 @@ class Sequencer:
                         self._account_dose(chk.photons)
                         self._refuse(frame, p, k, set_index, t_req, flags, attempts, chk)
                         self._fault("exposure_shortened",
-                                    f"pass {p} mask {k}: {chk.saturated_fraction:.2%} saturated: exposure "
+                                    f"pass {p + 1} mask {k + 1}: {chk.saturated_fraction:.2%} saturated: exposure "
                                     f"{self.exposure_s:g} s -> {new:g} s, frame retaken")
                         self.exposure_s = new
                         shortenings += 1
@@ -851,20 +893,21 @@ class Sequencer:
             if chk.flags & FLAG_SATURATED:
                 self.saturated += 1
             if chk.problems:
-                self.event("check", f"pass {p} mask {k}: " + "; ".join(chk.problems), "warning")
+                self.event("check", f"pass {p + 1} mask {k + 1}: " + "; ".join(chk.problems), "warning")
             # frame set buffer: dark-subtracted, flat-corrected electrons, zero frequency moved to [0, 0]
             self._set_buffer[k] = np.fft.ifftshift(resp.electrons(frame.pixels, self.dark_dn, self.flat))
             self._set_exposures[k] = frame.exposure_s
             if self.pub is not None:
                 meta = {"pass_index": p, "mask_index": k, "frame_index": idx, "frame_id": frame.frame_id,
                         "exposure_s": frame.exposure_s, "saturated_fraction": chk.saturated_fraction,
-                        "peak_dn": chk.peak_dn, "photons": chk.photons, "flags": flag_names(flags),
+                        "peak_dn": chk.peak_dn, "photons": chk.photons, "flags": int(flags),
+                        "flag_names": flag_names(flags),
                         "max_dn": self.limits.max_dn}
                 self.pub.publish("frame", meta, frame.pixels)
                 self.pub.publish("preview", meta, downsample_preview(frame.pixels))
                 self.pub.publish("check", {**meta, "problems": chk.problems})
             pr = self._progress
-            pr.mask_index, pr.frames_done = k, self.frames
+            pr.mask_index, pr.frames_done, pr.exposure_s = k, self.frames, self.exposure_s
             pr.photons_last, pr.saturated_last, pr.photons_total = chk.photons, chk.saturated_fraction, self.photons_total
             self._notify()
             self._account_dose(chk.photons)
@@ -883,9 +926,15 @@ class Sequencer:
             intens = np.maximum(self._set_buffer, 0.0)
             if np.any(self._set_exposures != ref):
                 intens *= (ref / self._set_exposures).astype(np.float32)[:, None, None]
-            if not self.recon.submit(p, intens, ref, resp.quantum_efficiency):
+            if not self.recon.submit(p, intens, ref, resp.quantum_efficiency, noise=self.noise_model()):
                 self.event("recon_behind", f"reconstruction is behind: frame set {p} skipped for the live estimate "
                            "(it is in the run file)", "warning")
+
+    def noise_model(self) -> dict:
+        """What is known about the noise of the frame sets (reconstruct.precision.NoiseModel fields)."""
+        from .run_state import noise_model_for
+
+        return noise_model_for(self.bench, self.read_noise_e, self.darks if self.plan.dark_frames else 0)
 
     def _collect_estimates(self, timeout_s: float, drain: bool = False) -> None:
         if self.recon is None:
@@ -896,6 +945,7 @@ class Sequencer:
         from maskrun.reconstruct import relative_error
 
         for hdr, est in got:
+            prec = hdr.precision or {}
             true_err = float("nan")
             if self.bench.truth is not None:
                 if est.shape != self.bench.truth.shape or self.bench.config.masks.count != 1:
@@ -911,6 +961,7 @@ class Sequencer:
                     pass_index=hdr.pass_index, passes_used=hdr.passes_used, residual=hdr.residual,
                     error_estimate=hdr.error_estimate, true_error=true_err, iterations=hdr.iterations,
                     photons=hdr.photons, elapsed_s=hdr.elapsed_s, t_s=time.time(),
+                    **{col: _nan_if_none(prec.get(key)) for col, key in PRECISION_COLUMNS.items()},
                 ),
             )
             self.store.flush()
@@ -918,10 +969,13 @@ class Sequencer:
             self.last_estimate = (true_err, hdr.error_estimate, hdr.residual)
             pr = self._progress
             pr.estimate_true_error, pr.estimate_error_estimate, pr.estimate_residual = self.last_estimate
+            pr.precision = hdr.precision
+            pr.estimates_waiting = len(self.recon.outstanding)
             if self.pub is not None:
                 self.pub.publish("estimate", {"pass_index": hdr.pass_index, "passes_used": hdr.passes_used,
                                               "residual": hdr.residual, "error_estimate": hdr.error_estimate,
                                               "true_error": true_err, "iterations": hdr.iterations,
+                                              "precision": hdr.precision,
                                               "units": "sqrt(incident photons per second)"}, est)
             self._notify()
 

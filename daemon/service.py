@@ -31,6 +31,7 @@ States (``state`` in every reply): idle, preparing, darks, acquiring, paused, fi
 from __future__ import annotations
 
 import collections
+import dataclasses
 import json
 import os
 import threading
@@ -60,6 +61,8 @@ from .security import (
     load_server_keys,
     start_authenticator,
 )
+from .run_state import AlertBook, live_state, state_from_file
+from .safety_readings import RecordingSafetyBox, SafetyReadings
 from .sequencer import Progress, RunControl, RunPlan, RunSummary
 from .stream import Publisher
 
@@ -79,12 +82,16 @@ class ServicePublisher(Publisher):
     def __init__(self, context: zmq.Context, address: str, *, hwm: int, alerts: int = 20, keys=None,
                  curve: str = "auto"):
         super().__init__(context, address, hwm=hwm, keys=keys, curve=curve)  # XPUB, bounded subscriptions
-        self.recent_alerts: collections.deque = collections.deque(maxlen=alerts)
+        self.alerts = AlertBook(alerts)  # time-stamped, cleared when they no longer hold (run_state)
         self.sent: collections.Counter = collections.Counter()
 
+    @property
+    def recent_alerts(self) -> list[dict]:
+        return self.alerts.active()
+
     def publish(self, topic: str, meta: dict | None = None, array: np.ndarray | None = None) -> int:
-        if topic == "alert":
-            self.recent_alerts.append({"t_s": time.time(), **(meta or {})})
+        if topic in ("alert", "event"):
+            self.alerts.on_event(topic, meta or {})
         self.sent[topic] += 1
         return super().publish(topic, meta, array)
 
@@ -97,6 +104,7 @@ class _RunActivity:
     t_start: float
     progress: dict
     summary: RunSummary | None = None
+    last: Progress | None = None  # the sequencer's latest progress
     error: str = ""
 
 
@@ -128,6 +136,7 @@ class Service:
         self.darks_info: dict = {}
         self.interlock_closed: bool | None = None
         self.shutter_open: bool | None = None
+        self.safety_readings = SafetyReadings()  # every reading of the box, with its time (safety_readings)
         self.last_run: dict = {}
         self.photons_lifetime = 0.0
         self.runs_started = 0
@@ -151,6 +160,7 @@ class Service:
         """Build and open the bench (shutter closed), the sockets and the reconstruction worker."""
         cfg = self.cfg
         self.bench = build_bench(cfg)
+        self.bench.safety = RecordingSafetyBox(self.bench.safety, self.safety_readings)
         self.dark_dn = self.bench.response.offset_dn  # the profile's offset, until dark frames are taken
         try:
             self.bench.open()
@@ -332,6 +342,7 @@ class Service:
                     "fps": 0.0, "eta_s": None, "elapsed_s": 0.0}
         act = _RunActivity(threading.Thread(target=self._run_thread, name="run", daemon=True), control, plan,
                            time.monotonic(), progress)
+        self.pub.alerts.clear()  # a new run: the last run's alerts are in its outcome (last_run.warnings)
         self._run = act
         self.state = "preparing"
         self.runs_started += 1
@@ -359,6 +370,7 @@ class Service:
                       true_error=p.estimate_true_error, error_estimate=p.estimate_error_estimate,
                       residual=p.estimate_residual, message=p.message, fps=fps,
                       eta_s=(remaining / fps) if fps > 0 else None, elapsed_s=now - act.t_start)
+            act.last = dataclasses.replace(p)
             if p.state.value in RUN_STATES:
                 self.state = p.state.value
 
@@ -375,7 +387,13 @@ class Service:
             s = act.summary
             photons = s.photons_total if s else act.progress["photons_total"]
             self.photons_lifetime += photons
+            try:
+                told = state_from_file(act.plan.output_path).to_dict()  # the file's account (run_state)
+            except Exception as exc:  # no file (refused before creation) or unreadable
+                told = {"outcome": f"Fault: {act.error or exc}"}
+            self.pub.alerts.clear()  # the run's alerts are in its outcome now
             self.last_run = {
+                **told,
                 "state": s.state.value if s else "fault",
                 "message": (s.message if s else act.error),
                 "output_path": str(act.plan.output_path),
@@ -582,24 +600,28 @@ class Service:
         state = self.state
         run = None
         photons_now = 0.0
+        exposure_now = self.exposure_s
         if self._run is not None and state in RUN_STATES:
-            run = dict(self._run.progress)
-            run["output_path"] = str(self._run.plan.output_path)
-            run["passes"] = self._run.plan.passes
-            run["exposure_s"] = self._run.plan.exposure_s
-            run["elapsed_s"] = time.monotonic() - self._run.t_start
+            act = self._run
+            pr = act.progress
+            if act.last is not None:
+                run = live_state(act.last, act.plan, int(self.bench.masks.shape[0]), fps=pr.get("fps", 0.0),
+                                 eta_s=pr.get("eta_s"), elapsed_s=time.monotonic() - act.t_start,
+                                 warnings=self.pub.recent_alerts if self.pub is not None else []).to_dict()
+            else:
+                run = {**pr, "output_path": str(act.plan.output_path), "passes": act.plan.passes,
+                       "exposure_s": act.plan.exposure_s, "dark_frames": act.plan.dark_frames}
+            exposure_now = run.get("exposure_s") or act.plan.exposure_s
             photons_now = run["photons_total"]
         align = None
-        interlock, shutter = self.interlock_closed, self.shutter_open
-        safety_source = "read from the safety box while idle"
-        if run is not None:
-            # the run thread alone talks to the safety box: the shutter is open exactly while acquiring
-            shutter = state == "acquiring"
-            safety_source = "inferred from the run state (the sequencer checks the interlock before every frame)"
+        # every safety field is what the box said, with its age; too old or failed: unknown (never inferred)
+        max_age = max(5.0, 3 * self.cfg.service.status_interval_s)
+        readings = self.safety_readings.snapshot(max_age)
+        interlock, shutter = readings["interlock_closed"], readings["shutter_open"]
+        safety_source = (f"read from the safety box (by the {'run' if run is not None else 'align loop' if state == 'align' else 'service'}"
+                         f"); a reading older than {max_age:g} s is shown as unknown")
         if self._align is not None and state == "align":
             align = self._align.figures.to_dict()
-            interlock, shutter = self._align.interlock_closed, self._align.shutter_open
-            safety_source = "read by the align loop before every frame"
         elif self._align is not None and self._align.error:
             align = {"message": self._align.error}
         photons = self.photons_lifetime + photons_now
@@ -616,8 +638,9 @@ class Service:
             "stream_curve": bool(self.pub is not None and self.pub.authenticated),
             "safety": {"acknowledged": ack is not None, "acknowledgement": ack, "interlock_closed": interlock,
                        "shutter_open": shutter, "source": safety_source, "laser_class": self.cfg.laser.laser_class,
-                       "wavelength_m": self.cfg.laser.wavelength_m},
-            "exposure_s": self.exposure_s,
+                       "wavelength_m": self.cfg.laser.wavelength_m, **readings},
+            "exposure_s": exposure_now,  # the run's (as used) while a run goes, else the next run's
+            "exposure_next_run_s": self.exposure_s,
             "masks": int(self.bench.masks.shape[0]) if self.bench is not None else 0,
             "grid_shape": list(self.cfg.grid.shape),
             "max_dn": self.bench.camera.max_dn if self.bench is not None else 0,
@@ -628,7 +651,7 @@ class Service:
             "darks": self.darks_info or None,
             "dose": {"photons_total": photons, "energy_j": photons * self._photon_energy_j(),
                      "note": "incident photons counted at the camera since the service started (runs only)"},
-            "recent_alerts": list(self.pub.recent_alerts)[-10:] if self.pub is not None else [],
+            "recent_alerts": self.pub.recent_alerts[-10:] if self.pub is not None else [],
             "stream_sent": dict(self.pub.sent) if self.pub is not None else {},
             "runs_started": self.runs_started,
             "reconstruction": None if self.recon is None else {

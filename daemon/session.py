@@ -158,20 +158,30 @@ def execute_run(
         if own_recon and recon is not None:
             recon.close()
         raise
+    def log(kind: str, message: str, level: str = "info") -> None:
+        """Into the run log, and onto the stream as the sequencer's events are (warnings as alerts)."""
+        store.log(kind, message, level)
+        if publisher is not None:
+            publisher.publish("alert" if level in ("warning", "error") else "event",
+                              {"kind": kind, "level": level, "message": message})
+
     try:
+        if publisher is not None:  # first on the stream for this run: displays clear the last run's alerts here
+            publisher.publish("event", {"kind": "run_open", "level": "info", "resumed": bool(append),
+                                        "message": "run file reopened to resume" if append else "new run file"})
         if append:
-            store.log("resume", f"resumed at pass {plan.first_pass} (set {plan.first_set_index}); {resume_note}".rstrip("; "),
+            log("resume", f"resumed at pass {plan.first_pass + 1} (set index {plan.first_set_index}); {resume_note}".rstrip("; "),
                       "warning")
-        store.log("safety_ack", f"laser-safety notice acknowledged by {ack.who} via {ack.how} at {ack.when_utc}")
+        log("safety_ack", f"laser-safety notice acknowledged by {ack.who} via {ack.how} at {ack.when_utc}")
         store.log("writer", f"pid {os.getpid()} on {socket.gethostname()}")
         for kind, message, level in extra_events:
-            store.log(kind, message, level)
+            log(kind, message, level)
         store.log("disk_plan", disk.describe(), "info")
         if disk.warning:
-            store.log("disk_warning", disk.warning, "warning")
+            log("disk_warning", disk.warning, "warning")
         darks = dark_advice(bench, plan)
         if darks:
-            store.log("dark_frames_few", darks, "warning")
+            log("dark_frames_few", darks, "warning")
         if recon is not None and earlier is not None and earlier.held:
             recon.preload(earlier)
             store.log("recon_preload", f"live reconstruction continues from the {earlier.held} frame set(s) "

@@ -113,6 +113,11 @@ ESTIMATE_INFO_DTYPE = np.dtype(
         ("photons", "<f8"),
         ("elapsed_s", "<f8"),
         ("t_s", "<f8"),
+        # the precision estimate without a truth (reconstruct.precision; NaN when not computed)
+        ("error_predicted", "<f8"),  # photon count + read noise + floors (dark frame, pixel response, quantisation)
+        ("error_data", "<f8"),  # from the data misfit (amplitude residual, corrected for the fitted parameters)
+        ("misfit_chi2_dof", "<f8"),  # chi^2 per degree of freedom against the noise model (~1: explained)
+        ("error_reported", "<f8"),  # what the displays show as the precision
     ]
 )
 
@@ -375,6 +380,12 @@ class RunStore:
         return i
 
     def append_estimate(self, estimate: np.ndarray, info) -> int:
+        if getattr(info, "dtype", None) is not None and info.dtype != self._estimate_info.dtype:  # an older file
+            old = np.zeros((), dtype=self._estimate_info.dtype)
+            for name in old.dtype.names:
+                if name in info.dtype.names:
+                    old[name] = info[name]
+            info = old
         i = self._append(self._estimates, self._estimate_info, self.estimate_count, estimate.astype(np.complex64), info)
         self.estimate_count += 1
         return i
@@ -466,7 +477,8 @@ def frame_info_record(**fields) -> np.void:
 
 def estimate_info_record(**fields) -> np.void:
     rec = np.zeros((), dtype=ESTIMATE_INFO_DTYPE)
-    rec["true_error"] = np.nan
+    for name in ("true_error", "error_predicted", "error_data", "misfit_chi2_dof", "error_reported"):
+        rec[name] = np.nan
     for k, v in fields.items():
         rec[k] = v
     return rec

@@ -45,7 +45,7 @@ import numpy as np
 
 from .figures import INTENSITY_CMAP, LINE_LABELS, LINE_STYLES, PHASE_CMAP, SATURATED_RGB, UNWRAPPED_PHASE_CMAP
 from .figures import colormap_lut
-from .view_model import LiveViewState
+from .view_model import HISTORY_CURVES, LiveViewState
 
 POLL_MS = 15
 DRAIN_BUDGET_S = 0.02  # time spent reading messages per tick before drawing
@@ -213,10 +213,11 @@ def _build_window_class():
             self.hist_plot.hideButtons()
             self.hist_plot.addLegend(offset=(12, -8), labelTextSize="9pt", brush=(255, 255, 255, 210),
                                     pen=(180, 180, 180), verSpacing=-6)
-            dash = {"-": QtCore.Qt.SolidLine, "--": QtCore.Qt.DashLine, ":": QtCore.Qt.DotLine}
-            symbol = {"o": "o", "s": "s", "^": "t1"}
+            dash = {"-": QtCore.Qt.SolidLine, "--": QtCore.Qt.DashLine, ":": QtCore.Qt.DotLine,
+                    "-.": QtCore.Qt.DashDotLine}
+            symbol = {"o": "o", "s": "s", "^": "t1", "D": "d", "v": "t"}
             self.curves = {}
-            for key in ("true_error", "error_estimate", "residual"):
+            for key in HISTORY_CURVES:
                 colour, marker, ls = LINE_STYLES[key]
                 pen = pg.mkPen(colour, width=2, style=dash[ls])
                 self.curves[key] = self.hist_plot.plot([], [], pen=pen, symbol=symbol[marker], symbolBrush=colour,

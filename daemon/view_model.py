@@ -23,7 +23,12 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .figures import log_counts, phase_for_display, saturated_pixels, unwrap_phase_ls
+from .run_state import mask_label, pass_label, precision_headline
 from .stream import StreamMessage
+from .store import flag_names
+
+# the per-pass curves of the view (figures.LINE_STYLES / LINE_LABELS name them)
+HISTORY_CURVES = ("true_error", "error_reported", "error_predicted", "error_estimate", "residual")
 
 FPS_WINDOW_S = 3.0
 STALE_AFTER_S = 5.0
@@ -35,6 +40,8 @@ class PassRecord:
     residual: float
     error_estimate: float
     true_error: float
+    error_reported: float = float("nan")
+    error_predicted: float = float("nan")
 
 
 @dataclass
@@ -59,6 +66,7 @@ class LiveViewState:
     _last_message_t: float | None = None
     _log_buf: np.ndarray | None = None
     _phase_cache: tuple | None = None
+    run_warnings: list = field(default_factory=list)  # (clock, kind, message) of this run's alerts; a new run clears
     service: dict = field(default_factory=dict)  # last periodic status of `maskrun serve` (empty: none seen)
     service_saturation_dn: float | None = None
 
@@ -80,8 +88,10 @@ class LiveViewState:
             self.estimate, self.estimate_meta = msg.array, meta
             self._phase_cache = None
             p = int(meta.get("pass_index", meta.get("set_index", len(self.history))))
+            prec = meta.get("precision") or {}
             self.history[p] = PassRecord(p, _num(meta.get("residual")), _num(meta.get("error_estimate")),
-                                         _num(meta.get("true_error")))
+                                         _num(meta.get("true_error")), _num(prec.get("reported")),
+                                         _num(prec.get("predicted")))
             self.dirty |= {"estimate", "history", "status"}
         elif h.topic == "status" and meta.get("source") == "service":
             self._ingest_service_status(meta)
@@ -99,9 +109,12 @@ class LiveViewState:
                 self.status["pass_index"] = meta["pass_index"]
             self.dirty.add("status")
         elif h.topic in ("alert", "event"):
+            if meta.get("kind") == "run_open" and not meta.get("resumed"):
+                self.run_warnings.clear()  # a new run: its alerts start here
             if h.topic == "alert":
-                self.alerts.append((time.strftime("%H:%M:%S", time.localtime(h.t_s)), meta.get("level", "warning"),
-                                    str(meta.get("message", ""))))
+                stamp = time.strftime("%H:%M:%S", time.localtime(h.t_s))
+                self.alerts.append((stamp, meta.get("level", "warning"), str(meta.get("message", ""))))
+                self.run_warnings.append((stamp, str(meta.get("kind", "")), str(meta.get("message", ""))))
             self.dirty.add("status")
 
     def _ingest_service_status(self, meta: dict) -> None:
@@ -179,7 +192,7 @@ class LiveViewState:
         """Per-pass curves: name -> (pass number starting at 1, values), finite positive values only."""
         recs = [self.history[k] for k in sorted(self.history)]
         out = {}
-        for name in ("true_error", "error_estimate", "residual"):
+        for name in HISTORY_CURVES:
             x = np.array([r.pass_index + 1 for r in recs], dtype=float)
             y = np.array([getattr(r, name) for r in recs], dtype=float)
             ok = np.isfinite(y) & (y > 0)
@@ -197,11 +210,14 @@ class LiveViewState:
         if "shutter_open" in safety:
             parts.append("shutter OPEN" if safety["shutter_open"] else "shutter closed")
         p = fm.get("pass_index", st.get("pass_index"))
-        passes = st.get("passes")
-        if p is not None and int(p) >= 0:
-            parts.append(f"pass {int(p) + 1}" + (f"/{passes}" if passes else ""))
-        if "mask_index" in fm:
-            parts.append(f"mask {int(fm['mask_index']) + 1}" + (f"/{st['masks']}" if st.get("masks") else ""))
+        if pass_label(p, st.get("passes")):
+            parts.append(pass_label(p, st.get("passes")))
+        if mask_label(fm.get("mask_index"), st.get("masks")):
+            parts.append(mask_label(fm.get("mask_index"), st.get("masks")))
+        run = self.service.get("run") or {}
+        exposure = run.get("exposure_s") or fm.get("exposure_s")
+        if exposure:
+            parts.append(f"exposure {float(exposure):g} s")
         parts.append(f"{self.fps(now):.1f} frames/s")
         figures = []  # second line: figures of the latest frame and the stream's health
         dose = self.service.get("dose") or {}
@@ -219,7 +235,12 @@ class LiveViewState:
                 figures.append(f"centroid row {c[0]:.1f}, col {c[1]:.1f} (pixel)")
             figures.append(f"saturated {100 * float(fm.get('saturated_fraction', 0.0)):.2f}% of pixels")
             if fm.get("flags"):
-                figures.append("flags: " + ",".join(fm["flags"]))
+                names = fm.get("flag_names") or (flag_names(int(fm["flags"])) if isinstance(fm["flags"], int)
+                                                 else list(fm["flags"]))
+                figures.append("flags: " + ",".join(names))
+        head = precision_headline(self.estimate_meta.get("precision"), self.estimate_meta.get("error_estimate"))
+        if head:
+            figures.append(head)
         if self._last_message_t is None:
             figures.append(f"no data yet from {address}" if address else "no data yet")
         elif now - self._last_message_t > STALE_AFTER_S:
@@ -233,8 +254,9 @@ class LiveViewState:
         if not self.alerts:
             return ""
         t, lvl, m = self.alerts[-1]
-        n = self.received["alert"]
-        return f"[{t}] {lvl}: {m}" + (f"   ({n} alerts so far)" if n > 1 else "")
+        n = len(self.run_warnings)
+        kinds = sorted({k for _, k, _ in self.run_warnings})
+        return f"[{t}] {lvl}: {m}" + (f"   ({n} alerts this run: {', '.join(kinds)})" if n > 1 else "")
 
 
 def _num(v) -> float:

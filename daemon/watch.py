@@ -28,13 +28,15 @@ from rich.progress_bar import ProgressBar
 from rich.table import Table
 from rich.text import Text
 
+from .run_state import PAUSE_KINDS, clock, mask_label, precision_headline, precision_rows, progress_line, run_rows
+from .safety_readings import safety_text
 from .stream import StreamError, StreamMessage, Subscriber
 
 WATCH_TOPICS = ("preview", "estimate", "status", "check", "alert", "event", "frameset")
 UPPER_HALF_BLOCK = "\u2580"
 SATURATED_RGB = (255, 32, 32)
 SHOWN_EVENTS = ("run_start", "run_end", "align_start", "align_end", "safety_ack", "paused", "resumed", "darks",
-                "service_start")  # info events listed with the alerts
+                "service_start", "estimates_wait")  # info events listed with the alerts
 
 
 @dataclass
@@ -49,6 +51,7 @@ class WatchModel:
     estimate_meta: dict = field(default_factory=dict)
     check_meta: dict = field(default_factory=dict)
     alerts: collections.deque = field(default_factory=lambda: collections.deque(maxlen=6))
+    run_warnings: list = field(default_factory=list)  # (t_s, kind, message) of this run's alerts (a new run clears)
     messages: int = 0
     bad_messages: int = 0
     gaps: dict = field(default_factory=dict)
@@ -77,8 +80,18 @@ class WatchModel:
             self.check_meta = dict(h.meta)
         elif h.topic in ("alert", "event"):
             level = h.meta.get("level", "info")
-            if h.topic == "alert" or h.meta.get("kind") in SHOWN_EVENTS:
-                self.alerts.append((h.t_s, level, str(h.meta.get("message", ""))))
+            kind = str(h.meta.get("kind", ""))
+            if kind == "run_open" and not h.meta.get("resumed"):
+                self.alerts.clear()  # a new run: alerts belong to the run they were raised in
+                self.run_warnings.clear()
+            elif kind == "resumed":  # the pause alerts it answers no longer hold
+                kept = [a for a in self.alerts if a[3] not in PAUSE_KINDS]
+                self.alerts.clear()
+                self.alerts.extend(kept)
+            if h.topic == "alert":
+                self.run_warnings.append((h.t_s, kind, str(h.meta.get("message", ""))))
+            if h.topic == "alert" or kind in SHOWN_EVENTS:
+                self.alerts.append((h.t_s, level, str(h.meta.get("message", "")), kind))
 
     def silent_for_s(self, now_s: float | None = None) -> float:
         """Seconds since the last message when that is long enough to mean trouble (the service
@@ -225,24 +238,26 @@ def render(model: WatchModel, image_cols: int = 40, image_rows: int = 32, now_s:
     ack = safety.get("acknowledged")
     inter = safety.get("interlock_closed")
     shutter = safety.get("shutter_open")
+    inter_text, shutter_text = safety_text(safety) if safety else ("?", "?")
     head = Text()
     head.append(" maskrun ", style="bold black on cyan")
     head.append(f"  state: {state}", style="bold")
     head.append("   notice: ")
     head.append("acknowledged" if ack else "NOT acknowledged", style="green" if ack else "bold red")
     head.append("   interlock: ")
-    head.append({True: "closed", False: "OPEN", None: "?"}[inter], style="green" if inter else "bold red")
+    head.append(inter_text, style="green" if inter else "bold red")
     head.append("   shutter: ")
-    head.append({True: "OPEN", False: "closed", None: "?"}[shutter], style="bold yellow" if shutter else "green")
-    if st.get("exposure_s") is not None:
-        head.append(f"   exposure {st['exposure_s']:g} s")
+    head.append(shutter_text, style="green" if shutter is False else "bold yellow")
+    run = st.get("run") or {}
+    exposure = run.get("exposure_s") or st.get("exposure_s")
+    if exposure is not None:
+        head.append(f"   exposure {exposure:g} s" + (" (this run)" if run else " (next run)"))
 
     figures = Table.grid(padding=(0, 2))
     figures.add_column(style="bold")
     figures.add_column()
     figures.add_column(style="bold")
     figures.add_column()
-    run = st.get("run") or {}
     align = st.get("align") or {}
     check = model.check_meta
     rows: list[tuple[str, str]] = []
@@ -251,16 +266,13 @@ def render(model: WatchModel, image_cols: int = 40, image_rows: int = 32, now_s:
     if run:
         done, total = run.get("frames_done", 0), max(run.get("frames_total", 1), 1)
         bar = ProgressBar(total=total, completed=done, width=40)
-        progress_line = Text(f" {done}/{total} frames  pass {run.get('pass_index', -1) + 1}/{run.get('passes', '?')}"
+        progress_line = Text(f" {progress_line_of(run)}"
                              f"  ETA {_duration(run.get('eta_s'))}  elapsed {_duration(run.get('elapsed_s'))}")
         rows += [("frame rate", f"{_fmt(run.get('fps'), '.1f')} fps"),
                  ("saturation (last)", f"{_fmt(run.get('saturated_last'), '.3%')}"),
                  ("photons / frame (last)", _fmt(run.get("photons_last"), ".3g")),
-                 ("photons this run", _fmt(run.get("photons_total"), ".3g")),
-                 ("residual", _fmt(run.get("residual"), ".3g")),
-                 ("expected precision now", _fmt(run.get("error_estimate"), ".2%")),
-                 ("error vs truth", _fmt(run.get("true_error"), ".2%")),
-                 ("run file", str(run.get("output_path", "")))]
+                 ("residual", _fmt(run.get("residual"), ".3g"))]
+        rows += run_rows(run)
     elif align:
         cen = align.get("centroid_rc") or [None, None]
         rows += [("align", "cycling all masks" if align.get("cycling") else f"mask {align.get('mask_index')}"),
@@ -275,12 +287,14 @@ def render(model: WatchModel, image_cols: int = 40, image_rows: int = 32, now_s:
     else:
         last = st.get("last_run") or {}
         if last:
-            rows += [("last run", f"{last.get('state')} {last.get('message') or ''}".strip()),
-                     ("frames", f"{last.get('frames')} (+{last.get('darks')} dark)"),
-                     ("final error estimate", _fmt(last.get("final_error_estimate"), ".2%")),
-                     ("run file", str(last.get("output_path", "")))]
+            rows += [("last run", last.get("outcome") or str(last.get("state"))),
+                     ("frames", f"{last.get('frames')} (+{last.get('darks')} dark)")]
+            rows += run_rows(last)
         elif check:
             rows.append(("last check", ", ".join(check.get("problems", [])) or "ok"))
+    if model.run_warnings:
+        kinds = collections.Counter(k for _, k, _ in model.run_warnings)
+        rows.append(("warnings this run", ", ".join(f"{k} x{n}" if n > 1 else k for k, n in kinds.items())))
     dose = st.get("dose") or {}
     rows += [("photons (service)", _fmt(dose.get("photons_total"), ".3g")),
              ("dose (service)", f"{_fmt(dose.get('energy_j'), '.3g')} J"),
@@ -295,17 +309,18 @@ def render(model: WatchModel, image_cols: int = 40, image_rows: int = 32, now_s:
     images.add_column()
     images.add_column()
     fmeta = model.preview_meta
-    ftitle = "latest frame" + (f" (mask {fmeta['mask_index']})" if "mask_index" in fmeta else "")
+    label = mask_label(fmeta.get("mask_index"), st.get("masks"))
+    ftitle = "latest frame" + (f" ({label})" if label else "")
     emeta = model.estimate_meta
-    etitle = "phase estimate" + (f" (error est. {emeta['error_estimate']:.2%})"
-                                 if isinstance(emeta.get("error_estimate"), (int, float)) else "")
+    head_est = precision_headline(emeta.get("precision"), emeta.get("error_estimate"))
+    etitle = "phase estimate" + (f" ({head_est})" if head_est else "")
     images.add_row(Panel(frame_image(model, image_cols, image_rows), title=ftitle, expand=False),
                    Panel(phase_image(model, image_cols, image_rows), title=etitle, expand=False))
 
     alerts = Text()
-    for t_s, level, message in list(model.alerts)[-5:]:
+    for t_s, level, message in _alert_list(model)[-5:]:
         style = {"error": "bold red", "warning": "yellow"}.get(level, "dim")
-        alerts.append(time.strftime("%H:%M:%S ", time.localtime(t_s)), style="dim")
+        alerts.append(clock(t_s) + " ", style="dim")
         alerts.append(message + "\n", style=style)
     parts = [head]
     silent = model.silent_for_s(now_s)
@@ -319,6 +334,23 @@ def render(model: WatchModel, image_cols: int = 40, image_rows: int = 32, now_s:
         parts.append(row)
     parts += [figures, images, Panel(alerts or Text("none", style="dim"), title="recent alerts and events")]
     return Group(*parts)
+
+
+def progress_line_of(run: dict) -> str:
+    return progress_line(run)
+
+
+def _alert_list(model: WatchModel) -> list[tuple[float, str, str]]:
+    """The stream's alerts and shown events, with the service's active alerts (raised before this watch
+    subscribed) merged in by time; each once."""
+    seen = {(round(a[0], 1), a[2]) for a in model.alerts}
+    out = [(a[0], a[1], a[2]) for a in model.alerts]
+    for a in (model.status.get("recent_alerts") or []):
+        key = (round(float(a.get("t_s") or 0), 1), str(a.get("message", "")))
+        if not any(k[1] == key[1] and abs(k[0] - key[0]) < 2 for k in seen):
+            out.append((float(a.get("t_s") or 0), str(a.get("level", "warning")), str(a.get("message", ""))))
+            seen.add(key)
+    return sorted(out, key=lambda a: a[0])
 
 
 def run_watch(publish_address: str, console: Console, *, duration_s: float | None = None, refresh_hz: float = 4.0,

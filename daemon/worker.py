@@ -63,6 +63,8 @@ class FrameSetHeader(BaseModel):
     # already the mean of this many frame sets (accumulate: all so far; follow: the window), and the
     # worker uses them as they are instead of folding them into a running mean of its own.
     data_passes: int | None = None
+    # what is known about the data's noise (reconstruct.precision.NoiseModel fields), for the precision estimate
+    noise: dict | None = None
 
 
 class EstimateHeader(BaseModel):
@@ -77,6 +79,7 @@ class EstimateHeader(BaseModel):
     elapsed_s: float
     shape: tuple[int, int]
     worker: str
+    precision: dict | None = None  # reconstruct.precision.PrecisionEstimate.to_dict()
 
 
 def mask_digest(masks: np.ndarray) -> str:
@@ -171,6 +174,7 @@ class WorkerLoop:
             upd.passes_used = hdr.data_passes
             upd.photons = upd.photons * hdr.data_passes
             upd.error_estimate = shot_noise_relative_error(engine.pixels, upd.photons)
+        precision = _precision(engine, upd, intensities, hdr)
         est = (np.asarray(upd.estimate) * hdr.estimate_scale).astype(np.complex64)
         out = EstimateHeader(
             run_id=hdr.run_id,
@@ -183,6 +187,7 @@ class WorkerLoop:
             elapsed_s=time.perf_counter() - t0,
             shape=est.shape,
             worker=self.name,
+            precision=precision,
         )
         self.push.send_multipart([b"estimate", out.model_dump_json().encode(), memoryview(est).cast("B")], copy=False)
         return True
@@ -207,6 +212,26 @@ class WorkerLoop:
     def close(self) -> None:
         self.pull.close(0)
         self.push.close()
+
+
+def _precision(engine, upd, intensities: np.ndarray, hdr: FrameSetHeader) -> dict | None:
+    """The precision estimate of this update (reconstruct.precision): one more forward transform."""
+    from maskrun.reconstruct.precision import NoiseModel, estimate_precision
+
+    try:
+        ws = engine._ws
+        x = np.asarray(upd.estimate)
+        model = np.abs(ws.apply(x, np.empty(ws.shape, ws.dtype))) ** 2
+        lit = ws.lit
+        est = estimate_precision(model, intensities, sets=int(upd.passes_used), photons=float(upd.photons),
+                                 pixels=int(engine.pixels), lit_pixels=int(lit.sum()),
+                                 mean_weight=float(ws.weight[lit].mean()),
+                                 field_norm_sq=float(np.sum(np.abs(x.astype(np.complex128)) ** 2)),
+                                 noise=NoiseModel(**hdr.noise) if hdr.noise else None)
+        return est.to_dict()
+    except Exception as exc:  # the estimate is a convenience: never lose the update over it
+        print(f"precision estimate failed: {type(exc).__name__}: {exc}", file=sys.stderr)
+        return None
 
 
 def _alive(pid: int) -> bool:

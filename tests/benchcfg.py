@@ -23,6 +23,8 @@ def small_bench_text(*, grid=32, sensor=48, masks=6, passes=2, darks=2, extra_ca
         "seed = 11": "seed = 11\n" + extra_camera,
         # the demo camera has a 1 % pixel response spread (PRNU); test benches have none unless asked
         "prnu_fraction = 0.01": f"prnu_fraction = {prnu_fraction}",
+        # the data-sheet spread the precision estimate uses ([response]) says the same
+        "prnu_fraction = 0.01        # data-sheet": f"prnu_fraction = {prnu_fraction}        # data-sheet",
     }
     for old, new in repl.items():
         assert old in text, old

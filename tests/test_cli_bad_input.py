@@ -77,4 +77,4 @@ def test_a_good_run_from_the_command_line(tmp_path):
     assert res.returncode == 0, res.stderr + res.stdout
     files = sorted(x.suffix for x in (tmp_path / "out").iterdir())
     assert files == [".h5", ".log", ".png"]  # run file, plain-text run log, figure
-    assert "Run summary" in res.stdout and "reconstruction error vs truth" in res.stdout
+    assert "Run summary" in res.stdout and "error vs truth" in res.stdout

@@ -114,7 +114,10 @@ def test_run_stops_safely_before_the_disk_is_full(tiny_disk):
 
 def test_disk_full_during_a_write_stops_safely_and_keeps_the_flushed_frames(tiny_disk):
     """Another writer fills the disk completely between the free-space check and the frame write."""
-    text = bench_text(passes=6).replace("[run]\n", "[run]\nmin_free_disk_mb = 0\n", 1)
+    # frames of 8 KiB (64 x 64 uint16), larger than any space HDF5 already holds free inside the file, so the
+    # next frame's write needs new room on the disk (with 2 KiB frames it could land in allocated space)
+    text = (bench_text(passes=6).replace("[run]\n", "[run]\nmin_free_disk_mb = 0\n", 1)
+            .replace("shape = [32, 32]", "shape = [64, 64]", 1).replace("sensor_shape = [48, 48]", "sensor_shape = [80, 80]", 1))
     state = {"armed": False, "done": False}
 
     def observer(p, bench, control):
