@@ -46,6 +46,7 @@ from __future__ import annotations
 
 import json
 import os
+import threading
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -162,9 +163,13 @@ def _encode(text: str, nbytes: int) -> bytes:
 
 
 class RunStore:
-    """Writer of one run file. Not thread-safe: one writer thread owns it."""
+    """Writer of one run file. Its calls are serialised by ``lock`` (the frame writer thread appends frames
+    while the sequencer thread logs events)."""
 
     def __init__(self, path: Path, h5: h5py.File, text_log: bool = True):
+        # one writer at a time: the frame writer thread (daemon.frame_writer) appends frames while the
+        # sequencer logs events; a flush must never land between a frame's data and its info row
+        self.lock = threading.RLock()
         from .runlog import TextLog, text_log_path
 
         self.path = Path(path)
@@ -330,6 +335,10 @@ class RunStore:
 
     # --- appending ---------------------------------------------------------------
     def _append(self, data_ds, info_ds, count: int, pixels: np.ndarray, info: np.void | tuple) -> int:
+        with self.lock:
+            return self._append_locked(data_ds, info_ds, count, pixels, info)
+
+    def _append_locked(self, data_ds, info_ds, count: int, pixels: np.ndarray, info: np.void | tuple) -> int:
         if pixels.shape != self.frame_shape:
             raise StoreError(f"{self.path}: frame shape {pixels.shape} does not match the run's {self.frame_shape}")
         try:
@@ -391,15 +400,20 @@ class RunStore:
             [(t_s, level.encode()[:8], kind.encode()[:24], _encode(message, EVENT_MESSAGE_BYTES))],
             dtype=EVENT_DTYPE,
         )
-        try:
-            self._events.resize(self.event_count + 1, axis=0)
-            self._events[self.event_count] = rec[0]
-        except (OSError, RuntimeError) as exc:
-            raise self._write_error(exc) from None
-        self.event_count += 1
-        self.flush()
+        with self.lock:
+            try:
+                self._events.resize(self.event_count + 1, axis=0)
+                self._events[self.event_count] = rec[0]
+            except (OSError, RuntimeError) as exc:
+                raise self._write_error(exc) from None
+            self.event_count += 1
+            self.flush()
 
     def flush(self) -> None:
+        with self.lock:
+            self._flush_locked()
+
+    def _flush_locked(self) -> None:
         try:
             self._f.flush()
         except (OSError, RuntimeError) as exc:
