@@ -202,6 +202,7 @@ class RunSummary:
     pauses: int = 0
     refused: int = 0  # frames kept in /entry/refused
     sets_in_file: int = 0  # complete frame sets in the file (with those of earlier sessions of a resumed run)
+    writer_queue_high_water: int = 0  # most frames ever waiting for the writer thread (daemon.frame_writer)
 
 
 @dataclass
@@ -914,12 +915,9 @@ class Sequencer:
                 saturated_fraction=chk.saturated_fraction, peak_dn=chk.peak_dn, photons=chk.photons,
                 flags=flags, attempts=attempts,
             )
-            # frame set buffer: dark-subtracted, flat-corrected electrons, zero frequency moved to [0, 0]
-            # (one pass with the shift folded in; needed before the set's copy is queued below)
-            electrons_shifted(frame.pixels, self.dark_dn, resp.gain_dn_per_e, self._flat_shifted, self._set_buffer[k])
             self._set_exposures[k] = frame.exposure_s
-            if last:
-                self._pending_sets[set_index] = (p, self._frame_set_for_recon(), float(self._set_exposures.min()),
+            if last:  # announced once durable (the live data are added below, after the next trigger)
+                self._pending_sets[set_index] = (p, None, float(self._set_exposures.min()),
                                                  self.photons_total + max(chk.photons, 0.0))
             # stored by the writer thread (waits only when its queue is full); flushed at the set's end
             idx = self.writer.submit(frame.pixels, info, set_end=set_index if last else None)
@@ -935,6 +933,12 @@ class Sequencer:
                 self._arm(k + 1, set_index)
             elif not self.plan.interval_s and p + 1 < self.plan.passes:
                 self._arm(0, self.set_index)
+            # frame set buffer: dark-subtracted, flat-corrected electrons, zero frequency moved to [0, 0]
+            # (one pass with the shift folded in)
+            electrons_shifted(frame.pixels, self.dark_dn, resp.gain_dn_per_e, self._flat_shifted, self._set_buffer[k])
+            if last and set_index in self._pending_sets:
+                q, _, ref, photons_at_end = self._pending_sets[set_index]
+                self._pending_sets[set_index] = (q, self._frame_set_for_recon(), ref, photons_at_end)
             if chk.problems:
                 self.event("check", f"pass {p} mask {k}: " + "; ".join(chk.problems), "warning")
             if self.pub is not None:
@@ -1025,4 +1029,5 @@ class Sequencer:
             pauses=self.pauses,
             refused=self.refused,
             sets_in_file=self.plan.first_pass + self.passes_complete,
+            writer_queue_high_water=self.writer_stats.queue_high_water if self.writer_stats else 0,
         )
