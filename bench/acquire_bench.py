@@ -7,7 +7,8 @@ Run:  .venv/bin/python bench/acquire_bench.py [--seconds 60] [--size 1024] [--ex
    frame is ready ``exposure`` after its trigger), simulated modulator (no settle time) and safety
    box, K = 8 masks, for at least ``--seconds``; live reconstruction off (this measures
    acquisition; the live engine runs in its own process and would share the two cores). A live
-   subscriber (its own thread, the project's ``stream.Subscriber``) receives every frame.
+   subscriber (a process of its own, as a viewer is; the project's ``stream.Subscriber``) receives
+   every frame.
 2. In the same run, the bare loop on the same camera and frames: trigger, grab, then append to an
    HDF5 file with h5py (one frame per chunk, SWMR, flush per frame) and send with pyzmq (zero-copy),
    with a subscriber receiving, for the same time.
@@ -21,9 +22,9 @@ from __future__ import annotations
 import argparse
 import io
 import json
+import multiprocessing
 import socket
 import tempfile
-import threading
 import time
 from pathlib import Path
 
@@ -78,50 +79,58 @@ def bench_config(size: int, exposure_s: float, passes: int, port: int, out: Path
     return text + f'\n[stream]\npublish_address = "tcp://127.0.0.1:{port}"\n'
 
 
-class Listener:
-    """A subscriber that keeps up: counts frames and the gaps in their sequence numbers."""
-
-    def __init__(self, ctx: zmq.Context, address: str, bare: bool = False):
-        self.frames = 0
-        self.gaps = 0
-        self._stop = threading.Event()
-        if bare:
-            sock = ctx.socket(zmq.SUB)
-            sock.setsockopt(zmq.RCVHWM, 1000)
-            sock.setsockopt(zmq.SUBSCRIBE, b"")
-            sock.connect(address)
-            self._sock = sock
-            self._thread = threading.Thread(target=self._bare_loop, daemon=True)
-        else:
-            self._sub = Subscriber(ctx, address, ("frame",), hwm=1000)
-            self._thread = threading.Thread(target=self._loop, daemon=True)
-        self._thread.start()
-
-    def _loop(self):
-        while not self._stop.is_set():
-            msg = self._sub.receive(0.05)
-            if msg is not None and msg.header.topic == "frame":  # the filter "frame" also passes "frameset"
-                self.frames += 1
-        self.gaps = self._sub.gaps.get("frame", 0)
-        self._sub.close()
-
-    def _bare_loop(self):
+def _listen(address: str, bare: bool, ready, stop, results) -> None:
+    """The live subscriber's process: counts frames and the gaps in their sequence numbers."""
+    ctx = zmq.Context()
+    frames = gaps = 0
+    if bare:
+        sock = ctx.socket(zmq.SUB)
+        sock.setsockopt(zmq.RCVHWM, 1000)
+        sock.setsockopt(zmq.SUBSCRIBE, b"")
+        sock.connect(address)
+        ready.set()
         expected = None
-        while not self._stop.is_set():
-            if not self._sock.poll(50):
+        while not stop.is_set():
+            if not sock.poll(50):
                 continue
-            head, _payload = self._sock.recv_multipart(copy=False)
+            head, _payload = sock.recv_multipart(copy=False)
             seq = int.from_bytes(head.bytes, "little")
             if expected is not None and seq > expected:
-                self.gaps += seq - expected
+                gaps += seq - expected
             expected = seq + 1
-            self.frames += 1
-        self._sock.close(linger=0)
+            frames += 1
+        sock.close(linger=0)
+    else:
+        sub = Subscriber(ctx, address, ("frame",), hwm=1000)
+        ready.set()
+        while not stop.is_set():
+            msg = sub.receive(0.05)
+            if msg is not None and msg.header.topic == "frame":  # the filter "frame" also passes "frameset"
+                frames += 1
+        gaps = sub.gaps.get("frame", 0)
+        sub.close()
+    ctx.term()
+    results.put((frames, gaps))
+
+
+class Listener:
+    """A subscriber that keeps up, in a process of its own (as a viewer would be)."""
+
+    def __init__(self, address: str, bare: bool = False):
+        mp = multiprocessing.get_context("spawn")
+        self._ready, self._stop, self._results = mp.Event(), mp.Event(), mp.Queue()
+        self._proc = mp.Process(target=_listen, args=(address, bare, self._ready, self._stop, self._results),
+                                daemon=True)
+        self._proc.start()
+        self._ready.wait(30)
+        time.sleep(0.2)  # the subscription reaches the publisher
+        self.frames = self.gaps = 0
 
     def stop(self):
-        time.sleep(0.3)
+        time.sleep(0.5)  # what was sent is received
         self._stop.set()
-        self._thread.join()
+        self.frames, self.gaps = self._results.get(timeout=30)
+        self._proc.join(10)
 
 
 def run_daemon(size: int, exposure_s: float, seconds: float, work: Path) -> dict:
@@ -130,12 +139,10 @@ def run_daemon(size: int, exposure_s: float, seconds: float, work: Path) -> dict
     cfg_path = work / "acquire.toml"
     cfg_path.write_text(bench_config(size, exposure_s, passes, port, work))
     cfg = parse_config(cfg_path.read_text(), str(cfg_path))
-    ctx = zmq.Context()
-    listener = Listener(ctx, f"tcp://127.0.0.1:{port}")
+    listener = Listener(f"tcp://127.0.0.1:{port}")
     summary = run_foreground(cfg, RunRequest(acknowledge_unattended=True, output_dir=str(work), name="acq"),
                              Console(file=io.StringIO()))
     listener.stop()
-    ctx.term()
     with RunFile(summary.output_path) as rf:
         info = rf.frame_info()
         stored = rf.frame_count
@@ -159,8 +166,7 @@ def run_bare(cfg, seconds: float, work: Path) -> dict:
     pub = ctx.socket(zmq.PUB)
     pub.setsockopt(zmq.SNDHWM, 1000)
     pub.bind(f"tcp://127.0.0.1:{port}")
-    listener = Listener(ctx, f"tcp://127.0.0.1:{port}", bare=True)
-    time.sleep(0.3)
+    listener = Listener(f"tcp://127.0.0.1:{port}", bare=True)
     cam, mod = bench.camera, bench.modulator
     cam.exposure_s = cfg.camera.exposure_s
     bench.safety.open_shutter()
@@ -192,16 +198,43 @@ def run_bare(cfg, seconds: float, work: Path) -> dict:
     return {"fps": fps, "frames": n, "stream_received": listener.frames, "stream_gaps": listener.gaps}
 
 
+def disk_write_rate_mb_s(folder: Path, mb: int) -> float:
+    """Sustained write rate of ``folder``: ``mb`` MB in 2 MB blocks, then fsync; the file is deleted."""
+    block = np.random.default_rng(0).integers(0, 65535, 1 << 20, dtype=np.uint16).tobytes()
+    path = folder / "disk-check.bin"
+    t0 = time.perf_counter()
+    with open(path, "wb") as f:
+        for _ in range(max(1, mb // 2)):
+            f.write(block)
+        f.flush()
+        import os
+
+        os.fsync(f.fileno())
+    dt = time.perf_counter() - t0
+    path.unlink()
+    return max(1, mb // 2) * 2 / dt
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--seconds", type=float, default=60.0)
     ap.add_argument("--size", type=int, default=1024)
     ap.add_argument("--exposure", type=float, default=0.01)
+    ap.add_argument("--dir", default=None, help="where the run files go (default: the system's temporary folder); "
+                    "e.g. /dev/shm to take the disk out of the measurement (needs 2 x 200 MB per second of RAM)")
+    ap.add_argument("--disk-check-mb", type=int, default=1024,
+                    help="first measure the folder's sustained write rate with this many MB (written, fsynced, "
+                         "deleted; 0 = skip)")
     args = ap.parse_args()
-    with tempfile.TemporaryDirectory(prefix="maskrun-acquire-") as d:
+    with tempfile.TemporaryDirectory(prefix="maskrun-acquire-", dir=args.dir) as d:
         work = Path(d)
         print(f"acquire bench: {args.size}x{args.size} uint16, exposure {args.exposure * 1e3:g} ms, K = {K}, "
               f"{args.seconds:g} s each; fast simulated camera (real time), live subscriber")
+        need = args.size * args.size * 2 / args.exposure / 1e6
+        if args.disk_check_mb:
+            rate = disk_write_rate_mb_s(work, args.disk_check_mb)
+            print(f"  the folder takes {rate:.0f} MB/s sustained (written and fsynced); {need:.0f} MB/s are needed "
+                  f"at the exposure rate" + ("" if rate >= need else ": the disk, not the software, limits both loops"))
         dm = run_daemon(args.size, args.exposure, args.seconds, work)
         print(f"  daemon: {dm['fps']:6.1f} fps over {dm['frames_taken']} frames ({dm['sets']} complete sets, "
               f"{dm['state']}, {dm['wall_s']:.1f} s with darks and set-up); dropped: file {dm['file_dropped']} "
