@@ -2,10 +2,14 @@
 
 For each pass and each mask k: the modulator shows mask k and acknowledges,
 the sequencer waits the settle time, the camera exposes, the frame comes back
-with its frame id and time stamp; the frame is checked (saturation, photons),
-appended to the run file (flushed) and published; when all K frames of a pass
-are in, the frame set goes to the reconstruction worker (never waiting for
-it) and estimates are stored and published as they come back.
+with its frame id and time stamp; the frame is checked (saturation, photons)
+and handed to the writer thread (``frame_writer``; a full queue holds
+acquisition back, nothing is dropped); then the next mask is shown and its
+exposure started (``_arm``) while this frame is converted and published
+(pipelined). The writer flushes the file at every complete frame set and on a
+timer; a frame set is announced (stream, reconstruction worker, count) only
+once it is flushed, so a crash loses no announced set. Estimates are stored and
+published as they come back.
 
 Safety: the interlock must read closed before the shutter opens; the shutter is
 closed for dark frames, while paused, between the frame sets of a time series,

@@ -27,10 +27,12 @@ response_gain_dn_per_e, response_offset_dn, response_quantum_efficiency,
 response_profile (the profile path, "" without one).
 
 Crash safety: the file is created with the latest HDF5 format and switched to
-SWMR mode before the first frame, then flushed after every frame. Datasets grow
-by resizing, never by creating new objects, so a reader (or a reader after a
-SIGKILL) always sees a consistent file whose row counts may differ by at most
-the frame in progress; readers use the shortest of frames/frame_info.
+SWMR mode before the first frame, then flushed after every complete frame set
+and on a timer (``daemon.frame_writer``; events, darks and refused frames at once).
+Datasets grow by resizing, never by creating new objects, so a reader (or a
+reader after a SIGKILL) always sees a consistent file whose row counts may
+differ by at most the frame in progress; readers use the shortest of
+frames/frame_info.
 
 Attributes cannot change once SWMR mode starts, so everything that happens
 later (start, acknowledgement, faults, pauses, resumes, the end of the run) is
