@@ -17,8 +17,9 @@ frame. The sequencer learns that from ``durable_sets()`` and only then announces
 (stream message, live reconstruction, progress), so whatever was announced is in the file.
 
 A write error in the thread (disk full, I/O error) is kept and raised in the sequencer's
-thread by the next ``submit``, ``durable_sets``, ``wait_durable`` or ``close``; frames queued
-after it cannot be written either (the run stops; what was flushed before is kept).
+thread by the next ``submit``, ``durable_sets``, ``wait_durable`` or ``close``; the rows written
+since the last good flush are cut from the file (their data may not have reached the disk), and
+frames queued after it cannot be written either (the run stops; what was flushed before is kept).
 
 The store is shared with the sequencer thread (events, darks, refused frames, estimates): the
 store serialises its own calls (``RunStore.lock``), so a flush never lands between a frame's
@@ -183,6 +184,9 @@ class FrameWriter:
         self.stats.flushes += 1
 
     def _fail(self, exc: BaseException) -> None:
+        # rows appended since the last good flush may have their data lost (a full disk): take them out,
+        # so no frame set looks complete with frames that never reached the disk
+        self.store.truncate_frames(self.store._flushed_frames)
         with self._durable_cv:
             if self._error is None:
                 self._error = exc

@@ -27,8 +27,10 @@ response_gain_dn_per_e, response_offset_dn, response_quantum_efficiency,
 response_profile (the profile path, "" without one).
 
 Crash safety: the file is created with the latest HDF5 format and switched to
-SWMR mode before the first frame, then flushed after every complete frame set
-and on a timer (``daemon.frame_writer``; events, darks and refused frames at once).
+SWMR mode before the first frame; raw data bypass HDF5's chunk cache
+(``rdcc_nbytes=0``), so a frame's pixels are with the operating system (and a
+write error is seen) at its append; the file is flushed after every complete
+frame set and on a timer (``daemon.frame_writer``; events, darks and refused frames at once).
 Datasets grow by resizing, never by creating new objects, so a reader (or a
 reader after a SIGKILL) always sees a consistent file whose row counts may
 differ by at most the frame in progress; readers use the shortest of
@@ -190,6 +192,7 @@ class RunStore:
         self.refused_count = (min(self._refused.shape[0], self._refused_info.shape[0])
                               if self._refused is not None else 0)
         self.frame_count = min(self._frames.shape[0], self._frame_info.shape[0])
+        self._flushed_frames = self.frame_count  # frame rows on disk as of the last good flush
         self.dark_count = min(self._darks.shape[0], self._dark_info.shape[0])
         self.estimate_count = min(self._estimates.shape[0], self._estimate_info.shape[0])
         self.event_count = self._events.shape[0]
@@ -254,7 +257,7 @@ class RunStore:
         if not os.access(path.parent, os.W_OK):
             raise StoreError(f"{path.parent}: output folder is not writable; choose another output_dir")
         try:
-            f = h5py.File(path, "w", libver="latest")
+            f = h5py.File(path, "w", libver="latest", rdcc_nbytes=0)
         except OSError as exc:
             raise StoreError(f"{path}: cannot create the run file ({exc})") from None
         try:
@@ -316,7 +319,7 @@ class RunStore:
         or be repaired first (see daemon.recovery)."""
         path = Path(path)
         try:
-            f = h5py.File(path, "a", libver="latest")
+            f = h5py.File(path, "a", libver="latest", rdcc_nbytes=0)
         except OSError as exc:
             raise StoreError(f"{path}: cannot open the run file for appending ({exc})") from None
         if f.attrs.get("format") != FORMAT_NAME or "entry" not in f:
@@ -372,6 +375,18 @@ class RunStore:
         self.frame_count += 1
         return i
 
+    def truncate_frames(self, count: int) -> None:
+        """Cut /entry/frames and /entry/frame_info back to ``count`` rows (after a failed write: rows whose
+        data never reached the disk must not stay visible). Best effort; never raises."""
+        with self.lock:
+            for ds in (self._frames, self._frame_info):
+                try:
+                    if ds is not None and ds.shape[0] > count:
+                        ds.resize(count, axis=0)
+                except Exception:
+                    pass
+            self.frame_count = min(self.frame_count, int(count))
+
     def append_dark(self, pixels: np.ndarray, info) -> int:
         i = self._append(self._darks, self._dark_info, self.dark_count, pixels, info)
         self.dark_count += 1
@@ -416,8 +431,10 @@ class RunStore:
             self._flush_locked()
 
     def _flush_locked(self) -> None:
+        rows = self.frame_count
         try:
             self._f.flush()
+            self._flushed_frames = rows
         except (OSError, RuntimeError) as exc:
             raise self._write_error(exc) from None
 
