@@ -212,6 +212,10 @@ class RunConfig(_Table):
         None, gt=0, description="time series: keep taking frame sets for this long (needs interval_s; replaces passes)")
     min_free_disk_mb: float = Field(
         200.0, ge=0, description="refuse to start, or stop safely, when the run would leave less free disk than this")
+    writer_queue_frames: int = Field(
+        32, ge=1, le=4096, description="frames waiting for the writer thread at most; a full queue holds acquisition back")
+    flush_interval_s: float = Field(
+        0.5, gt=0, le=60, description="the run file is flushed after every complete frame set and at least this often")
 
     @model_validator(mode="after")
     def _series(self):

@@ -2,10 +2,14 @@
 
 For each pass and each mask k: the modulator shows mask k and acknowledges,
 the sequencer waits the settle time, the camera exposes, the frame comes back
-with its frame id and time stamp; the frame is checked (saturation, photons),
-appended to the run file (flushed) and published; when all K frames of a pass
-are in, the frame set goes to the reconstruction worker (never waiting for
-it) and estimates are stored and published as they come back.
+with its frame id and time stamp; the frame is checked (saturation, photons)
+and handed to the writer thread (``frame_writer``; a full queue holds
+acquisition back, nothing is dropped); then the next mask is shown and its
+exposure started (``_arm``) while this frame is converted and published
+(pipelined). The writer flushes the file at every complete frame set and on a
+timer; a frame set is announced (stream, reconstruction worker, count) only
+once it is flushed, so a crash loses no announced set. Estimates are stored and
+published as they come back.
 
 Safety: the interlock must read closed before the shutter opens; the shutter is
 closed for dark frames, while paused, between the frame sets of a time series,
@@ -68,6 +72,8 @@ from maskrun.drivers.errors import DeviceDisconnected, DeviceFault, DeviceMiscon
 from .bench import Bench
 from .checks import CheckLimits, FrameIdTracker, check_frame, downsample_preview
 from .disk import MB, DiskGuard, DiskSpaceError
+from .frame_convert import electrons_shifted, shifted
+from .frame_writer import FrameWriter
 from .recon_link import ReconLink
 from .store import (
     FLAG_AFTER_PAUSE,
@@ -201,6 +207,7 @@ class RunSummary:
     refused: int = 0  # frames kept in /entry/refused
     sets_in_file: int = 0  # complete frame sets in the file (with those of earlier sessions of a resumed run)
     resumable: bool = True  # False: the run could not take its first frame for a reason a resume repeats
+    writer_queue_high_water: int = 0  # most frames ever waiting for the writer thread (daemon.frame_writer)
 
 
 @dataclass
@@ -302,6 +309,15 @@ class Sequencer:
         self._light_started = False  # the interlock must read closed at the start; later it pauses the run
         self.disk = DiskGuard(Path(plan.output_path).parent, int(cfg.run.min_free_disk_mb * MB), store.bytes_per_frame)
         self.dose = self._make_dose_ledger()
+        # pipelined acquisition (see _arm): the exposure of the next mask runs while this frame is stored
+        # (FrameWriter thread) and published; a frame set is announced once it is flushed (durable)
+        self.writer: FrameWriter | None = None
+        self.writer_stats = None  # the last writer's counters (queue high-water mark, flushes), after the run
+        self._armed = None  # (set_index, mask_index) whose exposure was started by _arm
+        self._armed_t = 0.0
+        self._armed_flags = 0
+        self._pending_sets: dict = {}  # set_index -> what to announce when it is durable
+        self._flat_shifted = None if self.flat is None else shifted(self.flat)
 
     def _make_dose_ledger(self):
         ch = self.bench.config.checks
@@ -381,6 +397,7 @@ class Sequencer:
         final = State.finished
         late_estimates = False  # set when a stop or fault ends the run: collect estimates already on their way
         cam = self.bench.camera
+        cfg_run = self.bench.config.run
         try:
             self._set_state(State.preparing)
             cam.exposure_s = self.exposure_s
@@ -393,6 +410,7 @@ class Sequencer:
                     if self.plan.resumed else f"{self.plan.passes} passes")
             series = f", a frame set every {self.plan.interval_s:g} s" if self.plan.interval_s else ""
             self.event("run_start", f"run start: {what} x {self.k} masks, exposure {self.exposure_s:g} s{series}")
+            self.writer = FrameWriter(self.store, cfg_run.writer_queue_frames, cfg_run.flush_interval_s)
             if self.plan.dark_frames:
                 self._take_darks(self.plan.dark_frames)
             for p in range(self.plan.first_pass, self.plan.passes):
@@ -405,6 +423,7 @@ class Sequencer:
                     raise RunAborted(self.control.stop_reason)
             self._set_state(State.finishing)
             self.bench.safety.close_shutter()
+            self._close_writer()  # the last frames durable: the last sets announced and submitted
             waiting = len(self.recon.outstanding) + len(self.recon._pending) if self.recon is not None else 0
             if waiting:
                 self._progress.estimates_waiting = waiting
@@ -439,6 +458,12 @@ class Sequencer:
             raise
         finally:
             self._safe_state()
+            try:  # every frame queued is written and flushed before the run ends (also after a stop or fault)
+                self._close_writer()
+            except StoreError as exc:
+                if final == State.finished or not message:
+                    final, message = State.fault, str(exc)
+                self._fault_quietly("write_error", str(exc))
             if late_estimates:
                 # shutter closed: keep the estimates of frame sets already taken (bounded wait; never on a disk fault)
                 try:
@@ -465,6 +490,59 @@ class Sequencer:
                 pass  # the disk is full: the text log has the line; the file keeps what was flushed
             self._set_state(final)
         return self._summary(final, message, time.monotonic() - t0)
+
+    def _close_writer(self) -> None:
+        """Write and flush what is queued, stop the writer thread, announce the sets now durable."""
+        if self.writer is None:
+            return
+        w, self.writer = self.writer, None
+        try:
+            w.close()
+        finally:
+            self.writer_stats = w.stats
+            self._announce_durable(w)
+
+    def _announce_durable(self, writer: FrameWriter | None = None) -> None:
+        """Announce the frame sets the writer has flushed: count, stream message, live reconstruction."""
+        w = writer or self.writer
+        if w is None:
+            return
+        for set_index in w.durable_sets():
+            done = self._pending_sets.pop(set_index, None)
+            if done is None:
+                continue
+            p, intens, ref, photons_total = done
+            self.passes_complete += 1
+            if self.pub is not None:
+                self.pub.publish("frameset", {"pass_index": p, "set_index": set_index, "frames": self.k,
+                                              "photons_total": photons_total})
+            if self.recon is not None and intens is not None:
+                if not self.recon.submit(p, intens, ref, self.bench.response.quantum_efficiency,
+                                        noise=self.noise_model()):
+                    self.event("recon_behind", f"reconstruction is behind: frame set {p} skipped for the live "
+                               "estimate (it is in the run file)", "warning")
+
+    def _arm(self, k: int, set_index: int) -> None:
+        """Show mask k and start its exposure now, so it runs while the previous frame is stored and
+        published (the pipelined loop). The same checks as before any exposure come first (disk, dose,
+        interlock and shutter); a stop, pause or saturation stop asked for meanwhile arms nothing.
+        A trigger that fails leaves the frame to be taken the ordinary way (with its retries)."""
+        if self._stop_after_frame or self.control.stop_requested or self.control.pause_requested:
+            return
+        self._frame_flags = 0
+        self.disk.check()
+        self._check_dose_before()
+        self._ensure_light()
+        mod = self.bench.modulator
+        self._call("modulator", lambda: mod.show(k), f"showing mask {k + 1}")
+        if mod.settle_s > 0:
+            time.sleep(mod.settle_s)
+        t = time.time()
+        try:
+            self.bench.camera.trigger()
+        except DeviceError:
+            return
+        self._armed, self._armed_t, self._armed_flags = (set_index, k), t, self._frame_flags
 
     def _fault_quietly(self, kind: str, message: str, level: str = "error") -> None:
         """Record a fault that ends the run; never raises (the store may be what failed)."""
@@ -686,19 +764,24 @@ class Sequencer:
             self.event("shutter", "shutter opened (interlock closed)")
 
     # --- frames -----------------------------------------------------------------
-    def _grab(self, timeout_s: float, p: int = -1, k: int = -1, set_index: int = -1):
+    def _grab(self, timeout_s: float, p: int = -1, k: int = -1, set_index: int = -1, triggered_at: float | None = None):
         """Trigger and grab one frame, retrying timeouts/faults with backoff, reconnecting a lost camera,
-        refusing stale frames and frames after an id gap. Returns (frame, attempts, flags, t_request)."""
+        refusing stale frames and frames after an id gap. Returns (frame, attempts, flags, t_request).
+        ``triggered_at``: the exposure was already started (by ``_arm``) at that time: the first attempt
+        only grabs it (a stop request then waits for the frame in progress)."""
         cam = self.bench.camera
         flags = 0
         attempts = failures = stale = 0
         delays = self._backoff()
         while True:
-            self._check_stop()
+            if triggered_at is None:
+                self._check_stop()
             attempts += 1
-            t_req = time.time()
+            t_req = time.time() if triggered_at is None else triggered_at
             try:
-                cam.trigger()
+                if triggered_at is None:
+                    cam.trigger()
+                triggered_at = None
                 frame = cam.grab(timeout_s)
             except DeviceDisconnected as exc:
                 self._fault("camera_disconnect", f"camera link lost ({exc.detail}); reconnecting")
@@ -823,16 +906,23 @@ class Sequencer:
         action = self.bench.config.checks.saturation_action
         shortenings = 0
         self._frame_flags = FLAG_AFTER_RESUME if self._after_resume else 0
+        armed = self._armed == (set_index, k)
+        self._armed = None
         while True:
-            self._check_pause()
-            self.disk.check()
-            self._check_dose_before()
-            self._ensure_light()
-            self._call("modulator", lambda: mod.show(k), f"showing mask {k + 1}")
-            if mod.settle_s > 0:
-                time.sleep(mod.settle_s)
+            if armed:  # shown and exposing since _arm (which made the checks below): grab it first
+                self._frame_flags |= self._armed_flags
+            else:
+                self._check_pause()
+                self.disk.check()
+                self._check_dose_before()
+                self._ensure_light()
+                self._call("modulator", lambda: mod.show(k), f"showing mask {k + 1}")
+                if mod.settle_s > 0:
+                    time.sleep(mod.settle_s)
             timeout = self.exposure_s + self.bench.config.camera.grab_timeout_s
-            frame, attempts, flags, t_req = self._grab(timeout, p, k, set_index)
+            frame, attempts, flags, t_req = self._grab(timeout, p, k, set_index,
+                                                       triggered_at=self._armed_t if armed else None)
+            armed = False
             flags |= self._frame_flags
             if not self._call("safety", self.bench.safety.shutter_is_open, "reading the shutter"):
                 self._refuse(frame, p, k, set_index, t_req, flags | FLAG_SHUTTER_CLOSED, attempts)
@@ -876,27 +966,39 @@ class Sequencer:
         self.set_index += 1
         for k in range(self.k):
             frame, chk, flags, attempts, t_req = self._take_frame(p, k, set_index)
-            idx = self.store.append_frame(
-                frame.pixels,
-                frame_info_record(
-                    pass_index=p, set_index=set_index, mask_index=k, frame_id=frame.frame_id, t_request_s=t_req,
-                    t_frame_s=frame.timestamp_s, exposure_s=frame.exposure_s,
-                    saturated_fraction=chk.saturated_fraction, peak_dn=chk.peak_dn, photons=chk.photons,
-                    flags=flags, attempts=attempts,
-                ),
+            last = k == self.k - 1
+            info = frame_info_record(
+                pass_index=p, set_index=set_index, mask_index=k, frame_id=frame.frame_id, t_request_s=t_req,
+                t_frame_s=frame.timestamp_s, exposure_s=frame.exposure_s,
+                saturated_fraction=chk.saturated_fraction, peak_dn=chk.peak_dn, photons=chk.photons,
+                flags=flags, attempts=attempts,
             )
-            self.store.flush()
+            self._set_exposures[k] = frame.exposure_s
+            if last:  # announced once durable (the live data are added below, after the next trigger)
+                self._pending_sets[set_index] = (p, None, float(self._set_exposures.min()),
+                                                 self.photons_total + max(chk.photons, 0.0))
+            # stored by the writer thread (waits only when its queue is full); flushed at the set's end
+            idx = self.writer.submit(frame.pixels, info, set_end=set_index if last else None)
             self.frames += 1
             self.photons_total += max(chk.photons, 0.0)
             if flags:
                 self.flagged += 1
             if chk.flags & FLAG_SATURATED:
                 self.saturated += 1
+            self._account_dose(chk.photons)
+            # the next exposure starts now (its mask shown first), while this frame is published
+            if not last:
+                self._arm(k + 1, set_index)
+            elif not self.plan.interval_s and p + 1 < self.plan.passes:
+                self._arm(0, self.set_index)
+            # frame set buffer: dark-subtracted, flat-corrected electrons, zero frequency moved to [0, 0]
+            # (one pass with the shift folded in)
+            electrons_shifted(frame.pixels, self.dark_dn, resp.gain_dn_per_e, self._flat_shifted, self._set_buffer[k])
+            if last and set_index in self._pending_sets:
+                q, _, ref, photons_at_end = self._pending_sets[set_index]
+                self._pending_sets[set_index] = (q, self._frame_set_for_recon(), ref, photons_at_end)
             if chk.problems:
                 self.event("check", f"pass {p + 1} mask {k + 1}: " + "; ".join(chk.problems), "warning")
-            # frame set buffer: dark-subtracted, flat-corrected electrons, zero frequency moved to [0, 0]
-            self._set_buffer[k] = np.fft.ifftshift(resp.electrons(frame.pixels, self.dark_dn, self.flat))
-            self._set_exposures[k] = frame.exposure_s
             if self.pub is not None:
                 meta = {"pass_index": p, "mask_index": k, "frame_index": idx, "frame_id": frame.frame_id,
                         "exposure_s": frame.exposure_s, "saturated_fraction": chk.saturated_fraction,
@@ -910,25 +1012,23 @@ class Sequencer:
             pr.mask_index, pr.frames_done, pr.exposure_s = k, self.frames, self.exposure_s
             pr.photons_last, pr.saturated_last, pr.photons_total = chk.photons, chk.saturated_fraction, self.photons_total
             self._notify()
-            self._account_dose(chk.photons)
             if self._stop_after_frame:
                 self._fault("saturation_stop", self._stop_after_frame, "error")
                 raise RunAborted(self._stop_after_frame)
+            self._announce_durable()
             self._collect_estimates(0.0)
-        self.passes_complete += 1
         self._after_resume = False
-        if self.pub is not None:
-            self.pub.publish("frameset", {"pass_index": p, "set_index": set_index, "frames": self.k,
-                                          "photons_total": self.photons_total})
-        if self.recon is not None:
-            # a copy (the buffer is reused), every frame scaled to the set's shortest exposure
-            ref = float(self._set_exposures.min())
-            intens = np.maximum(self._set_buffer, 0.0)
-            if np.any(self._set_exposures != ref):
-                intens *= (ref / self._set_exposures).astype(np.float32)[:, None, None]
-            if not self.recon.submit(p, intens, ref, resp.quantum_efficiency, noise=self.noise_model()):
-                self.event("recon_behind", f"reconstruction is behind: frame set {p} skipped for the live estimate "
-                           "(it is in the run file)", "warning")
+
+    def _frame_set_for_recon(self):
+        """A copy of the frame-set buffer for the live reconstruction (None without one): negative values
+        clipped, every frame scaled to the set's shortest exposure."""
+        if self.recon is None:
+            return None
+        ref = float(self._set_exposures.min())
+        intens = np.maximum(self._set_buffer, 0.0)
+        if np.any(self._set_exposures != ref):
+            intens *= (ref / self._set_exposures).astype(np.float32)[:, None, None]
+        return intens
 
     def noise_model(self) -> dict:
         """What is known about the noise of the frame sets (reconstruct.precision.NoiseModel fields)."""
@@ -1005,4 +1105,5 @@ class Sequencer:
             refused=self.refused,
             sets_in_file=self.plan.first_pass + self.passes_complete,
             resumable=not self._unfixable,
+            writer_queue_high_water=self.writer_stats.queue_high_water if self.writer_stats else 0,
         )

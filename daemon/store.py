@@ -27,10 +27,14 @@ response_gain_dn_per_e, response_offset_dn, response_quantum_efficiency,
 response_profile (the profile path, "" without one).
 
 Crash safety: the file is created with the latest HDF5 format and switched to
-SWMR mode before the first frame, then flushed after every frame. Datasets grow
-by resizing, never by creating new objects, so a reader (or a reader after a
-SIGKILL) always sees a consistent file whose row counts may differ by at most
-the frame in progress; readers use the shortest of frames/frame_info.
+SWMR mode before the first frame; raw data bypass HDF5's chunk cache
+(``rdcc_nbytes=0``), so a frame's pixels are with the operating system (and a
+write error is seen) at its append; the file is flushed after every complete
+frame set and on a timer (``daemon.frame_writer``; events, darks and refused frames at once).
+Datasets grow by resizing, never by creating new objects, so a reader (or a
+reader after a SIGKILL) always sees a consistent file whose row counts may
+differ by at most the frame in progress; readers use the shortest of
+frames/frame_info.
 
 Attributes cannot change once SWMR mode starts, so everything that happens
 later (start, acknowledgement, faults, pauses, resumes, the end of the run) is
@@ -46,6 +50,7 @@ from __future__ import annotations
 
 import json
 import os
+import threading
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -167,9 +172,13 @@ def _encode(text: str, nbytes: int) -> bytes:
 
 
 class RunStore:
-    """Writer of one run file. Not thread-safe: one writer thread owns it."""
+    """Writer of one run file. Its calls are serialised by ``lock`` (the frame writer thread appends frames
+    while the sequencer thread logs events)."""
 
     def __init__(self, path: Path, h5: h5py.File, text_log: bool = True):
+        # one writer at a time: the frame writer thread (daemon.frame_writer) appends frames while the
+        # sequencer logs events; a flush must never land between a frame's data and its info row
+        self.lock = threading.RLock()
         from .runlog import TextLog, text_log_path
 
         self.path = Path(path)
@@ -188,6 +197,7 @@ class RunStore:
         self.refused_count = (min(self._refused.shape[0], self._refused_info.shape[0])
                               if self._refused is not None else 0)
         self.frame_count = min(self._frames.shape[0], self._frame_info.shape[0])
+        self._flushed_frames = self.frame_count  # frame rows on disk as of the last good flush
         self.dark_count = min(self._darks.shape[0], self._dark_info.shape[0])
         self.estimate_count = min(self._estimates.shape[0], self._estimate_info.shape[0])
         self.event_count = self._events.shape[0]
@@ -252,7 +262,7 @@ class RunStore:
         if not os.access(path.parent, os.W_OK):
             raise StoreError(f"{path.parent}: output folder is not writable; choose another output_dir")
         try:
-            f = h5py.File(path, "w", libver="latest")
+            f = h5py.File(path, "w", libver="latest", rdcc_nbytes=0)
         except OSError as exc:
             raise StoreError(f"{path}: cannot create the run file ({exc})") from None
         try:
@@ -314,7 +324,7 @@ class RunStore:
         or be repaired first (see daemon.recovery)."""
         path = Path(path)
         try:
-            f = h5py.File(path, "a", libver="latest")
+            f = h5py.File(path, "a", libver="latest", rdcc_nbytes=0)
         except OSError as exc:
             raise StoreError(f"{path}: cannot open the run file for appending ({exc})") from None
         if f.attrs.get("format") != FORMAT_NAME or "entry" not in f:
@@ -335,6 +345,10 @@ class RunStore:
 
     # --- appending ---------------------------------------------------------------
     def _append(self, data_ds, info_ds, count: int, pixels: np.ndarray, info: np.void | tuple) -> int:
+        with self.lock:
+            return self._append_locked(data_ds, info_ds, count, pixels, info)
+
+    def _append_locked(self, data_ds, info_ds, count: int, pixels: np.ndarray, info: np.void | tuple) -> int:
         if pixels.shape != self.frame_shape:
             raise StoreError(f"{self.path}: frame shape {pixels.shape} does not match the run's {self.frame_shape}")
         try:
@@ -365,6 +379,18 @@ class RunStore:
         i = self._append(self._frames, self._frame_info, self.frame_count, pixels, info)
         self.frame_count += 1
         return i
+
+    def truncate_frames(self, count: int) -> None:
+        """Cut /entry/frames and /entry/frame_info back to ``count`` rows (after a failed write: rows whose
+        data never reached the disk must not stay visible). Best effort; never raises."""
+        with self.lock:
+            for ds in (self._frames, self._frame_info):
+                try:
+                    if ds is not None and ds.shape[0] > count:
+                        ds.resize(count, axis=0)
+                except Exception:
+                    pass
+            self.frame_count = min(self.frame_count, int(count))
 
     def append_dark(self, pixels: np.ndarray, info) -> int:
         i = self._append(self._darks, self._dark_info, self.dark_count, pixels, info)
@@ -402,17 +428,24 @@ class RunStore:
             [(t_s, level.encode()[:8], kind.encode()[:24], _encode(message, EVENT_MESSAGE_BYTES))],
             dtype=EVENT_DTYPE,
         )
-        try:
-            self._events.resize(self.event_count + 1, axis=0)
-            self._events[self.event_count] = rec[0]
-        except (OSError, RuntimeError) as exc:
-            raise self._write_error(exc) from None
-        self.event_count += 1
-        self.flush()
+        with self.lock:
+            try:
+                self._events.resize(self.event_count + 1, axis=0)
+                self._events[self.event_count] = rec[0]
+            except (OSError, RuntimeError) as exc:
+                raise self._write_error(exc) from None
+            self.event_count += 1
+            self.flush()
 
     def flush(self) -> None:
+        with self.lock:
+            self._flush_locked()
+
+    def _flush_locked(self) -> None:
+        rows = self.frame_count
         try:
             self._f.flush()
+            self._flushed_frames = rows
         except (OSError, RuntimeError) as exc:
             raise self._write_error(exc) from None
 

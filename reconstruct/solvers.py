@@ -52,7 +52,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import kernels
-from .fft import FFTPlan, PropagatorPlan
+from .fft import FFTPlan, PropagatorPlan, aligned_empty
 from .metrics import norm as _norm
 from .metrics import relative_error
 from .validation import (
@@ -132,16 +132,10 @@ def _thread_pool(n: int):
 
 
 def _single_thread_backend(shape, dtype) -> str:
-    """Fastest single-threaded FFT backend for a chunk (measured via FFTPlan)."""
+    """Fastest single-threaded FFT backend for a chunk (checked, ranked and kept by the fft module)."""
     from . import fft as _fft
 
-    key = (tuple(shape), np.dtype(dtype).str, "single")
-    if key not in _fft._CHOICE_CACHE:
-        rng = np.random.default_rng(0)
-        buf = (rng.standard_normal(shape) + 1j * rng.standard_normal(shape)).astype(dtype)
-        times = {b: _fft._time_backend(b, buf, 3) for b in ("numpy", "scipy-1")}
-        _fft._CHOICE_CACHE[key] = min(times, key=times.get)
-    return _fft._CHOICE_CACHE[key]
+    return _fft._choose(tuple(shape), dtype, unitary=False, single_thread=True)
 
 
 def _choose_threads(ws: "Workspace") -> int:
@@ -182,7 +176,12 @@ class Workspace:
 
     Holds masks and their conjugates divided by w in the working dtype, the
     measured amplitudes sqrt(y), and (K, H, W) buffers reused by every
-    iteration. ``set_intensities`` swaps the data in place (the incremental
+    iteration. The FFT plans are unnormalised (``fft_scale`` = sqrt(H W) times
+    the unitary DFT, which FFTW cannot scale without an extra pass), and
+    ``masks`` and ``masks_conj_w`` carry ``1/fft_scale``: ``plan.forward(masks * x)``
+    is exactly the unitary A x and ``conj_mask_sum(plan.inverse(z), masks_conj_w)``
+    exactly (A^*A)^{-1} A^* z, with no pass of its own for the scaling.
+    ``weight`` and ``inv_weight`` are the true mask weights. ``set_intensities`` swaps the data in place (the incremental
     engine uses this to warm-start without reallocating).
     """
 
@@ -192,19 +191,20 @@ class Workspace:
         self.real_dtype = np.float32 if self.dtype == np.complex64 else np.float64
         m = np.asarray(masks)
         self.shape = m.shape
-        self.masks = m.astype(self.dtype)
         w = np.sum(np.abs(m.astype(np.complex128)) ** 2, axis=0)
         self.weight = w
         self.weight_r = w.astype(self.real_dtype)
         self.lit = w > 0
         inv_w = np.where(self.lit, 1.0 / np.where(self.lit, w, 1.0), 0.0)
-        self.masks_conj_w = (np.conj(m) * inv_w).astype(self.dtype)
         self.inv_weight = inv_w.astype(self.real_dtype)  # 1/w where lit, 0 elsewhere
         self.mean_weight = float(w.mean())
         self.propagation = propagation
         self.transfer = None if propagation is None else propagation.transfer(self.shape)
-        self.plan = self._wrap(FFTPlan(self.shape, self.dtype, fft_backend))
-        self.Z = np.empty(self.shape, self.dtype)
+        self.plan = self._wrap(FFTPlan(self.shape, self.dtype, fft_backend, unitary=False))
+        self.fft_scale = self.plan.scale  # the same for every plan of this (H, W)
+        self.masks = (m / self.fft_scale).astype(self.dtype)
+        self.masks_conj_w = (np.conj(m) * (inv_w / self.fft_scale)).astype(self.dtype)
+        self.Z = aligned_empty(self.shape, self.dtype)
         self.sqrty = np.zeros(self.shape, self.real_dtype)
         self.y = np.zeros(self.shape, self.real_dtype)
         self.norm_sqrty = 1.0
@@ -237,11 +237,11 @@ class Workspace:
         if threads == 1:
             self.chunk_plans = [self.plan]
         else:
-            backend = fft_backend if fft_backend in ("numpy", "scipy-1") else None
+            backend = fft_backend if fft_backend in ("numpy", "scipy-1", "fftw-1", "mkl") else None
             self.chunk_plans = [
                 self._wrap(FFTPlan((c.stop - c.start,) + tuple(self.shape[1:]), self.dtype,
                                    backend or _single_thread_backend((c.stop - c.start,) + tuple(self.shape[1:]),
-                                                                     self.dtype)))
+                                                                     self.dtype), unitary=False))
                 for c in self.chunks
             ]
 
@@ -462,8 +462,8 @@ def _run_er_single(ws, x, n, residuals, stopper, deadline, truth, errors):
 
 class _RAARState:
     def __init__(self, ws):
-        self.T = np.empty(ws.shape, ws.dtype)
-        self.Zl = np.empty(ws.shape, ws.dtype)
+        self.T = aligned_empty(ws.shape, ws.dtype)
+        self.Zl = aligned_empty(ws.shape, ws.dtype)
 
 
 def _raar_estimate(ws, st):
@@ -732,7 +732,7 @@ def _run_poisson(ws, x, n, cons, residuals, stopper, deadline, truth, errors, fl
     from scipy.optimize import minimize
 
     K, H, W = ws.shape
-    masks = ws.masks.astype(np.complex128)
+    masks = ws.masks.astype(np.complex128) * ws.fft_scale  # the true masks: this plan is unitary
     masks_c = np.conj(masks)
     y = ws.y.astype(np.float64)
     plan = FFTPlan(ws.shape, np.complex128)
@@ -851,7 +851,8 @@ def solve(intensities, masks, *, method: str = "auto", iterations: int | None = 
     er_warmup : ER iterations before the Poisson L-BFGS (when no x0).
     seed : seed of the spectral start's random vector (results are
         deterministic for a given seed).
-    fft_backend : "auto" (measured), "numpy", "scipy-1" or "scipy-all".
+    fft_backend : "auto" (checked, measured and kept), "fftw-1", "fftw-all", "numpy", "scipy-1",
+        "scipy-all" or "mkl" (see ``maskrun.reconstruct.fft``).
     propagation : None (far field, the default) or a
         ``propagation.NearField(wavelength_m, pixel_pitch_m, distance_m)``
         for a camera in the near field (angular-spectrum model).

@@ -248,3 +248,68 @@ class CameraNoiseModel:
             return electrons.astype(self.dtype)
         np.copyto(out, electrons, casting="unsafe")
         return out
+
+
+# ---------------------------------------------------------------------------------------------
+# Fast rendering (the simulated camera's ``noise_rendering = "fast"``)
+# ---------------------------------------------------------------------------------------------
+FAST_BANK_FACTOR = 3  # the normal bank holds this many frames' worth of values (plus a prime margin)
+
+
+def fast_noise_bank(pixels: int, seed: int | None) -> np.ndarray:
+    """A bank of standard normal float32 values for ``render_fast`` (drawn once per camera).
+
+    Each frame reads a window of ``pixels`` consecutive values starting at a random offset, so
+    two frames use different values at every pixel unless their offsets coincide (probability
+    1 / (bank length - pixels) per pair of frames). The price of the speed: the noise of one
+    frame is a shifted copy of part of another's, so the frames are not independent as whole
+    images (pixel i of one frame can equal pixel i + d of another); the statistics at every pixel
+    and between two frames at the same pixel are those of independent draws.
+    """
+    rng = np.random.default_rng(None if seed is None else (int(seed), 0x5EED))
+    return rng.standard_normal(FAST_BANK_FACTOR * int(pixels) + 4099, dtype=np.float32)
+
+
+def fast_levels(model: CameraNoiseModel, photons: np.ndarray, exposure_s: float,
+                hot_pixels: np.ndarray | None = None, prnu_map: np.ndarray | None = None):
+    """Per-pixel mean and standard deviation in DN for ``render_fast`` (float32), made once per light.
+
+    Mean electrons mu_e = eta * mu_p (* PRNU) + dark electrons; the temporal variance in electrons
+    is mu_e (shot noise, Poisson: variance = mean) + read_noise^2; both times K, plus the offset.
+    Returns (mean_dn + 0.5, sd_dn, top): the 0.5 makes the truncating cast to integers round, and
+    ``top`` is the highest value before the cast (full well or ADC maximum, whichever is lower).
+    """
+    lam = np.multiply(photons, model.quantum_efficiency, dtype=np.float32)
+    if prnu_map is not None:
+        lam *= prnu_map
+    lam += np.float32(model.dark_current_e_per_s * exposure_s)
+    if hot_pixels is not None and hot_pixels.any() and model.hot_pixel_dark_current_e_per_s != model.dark_current_e_per_s:
+        lam[hot_pixels] += np.float32((model.hot_pixel_dark_current_e_per_s - model.dark_current_e_per_s) * exposure_s)
+    np.minimum(lam, np.float32(model.full_well_e), out=lam)
+    sd = lam + np.float32(model.read_noise_e ** 2)
+    np.sqrt(sd, out=sd)
+    sd *= np.float32(model.gain_dn_per_e)
+    lam *= np.float32(model.gain_dn_per_e)
+    lam += np.float32(model.offset_dn + 0.5)
+    top = min(float(model.max_dn), model.full_well_e * model.gain_dn_per_e + model.offset_dn) + 0.5
+    return lam, sd, np.float32(np.nextafter(np.float32(top), np.float32(0)))
+
+
+def render_fast(mean_dn: np.ndarray, sd_dn: np.ndarray, top: float, bank: np.ndarray, offset: int,
+                out: np.ndarray, scratch: np.ndarray) -> np.ndarray:
+    """One frame in DN: mean + sd * z, z a window of the normal bank, clipped to [0, top], rounded.
+
+    The Gaussian approximation of the shot noise keeps the EMVA 1288 linear relations exactly
+    (mean mu_y = offset + K mu_e and variance sigma_y^2 = K^2 (read^2 + mu_e) + 1/12, the 1/12 from
+    the rounding as in ``CameraNoiseModel.render``); it differs from Poisson in the higher moments
+    (skew 1/sqrt(mu_e)), which matters only at a few electrons per pixel, where the read noise
+    dominates. At the full well the frame is pinned to the full-well level (no read noise on top).
+    Four passes over float32; no Python loop. ``out`` is uint8/uint16 of the frame's shape.
+    """
+    n = mean_dn.size
+    z = bank[offset:offset + n].reshape(mean_dn.shape)
+    np.multiply(sd_dn, z, out=scratch)
+    scratch += mean_dn
+    np.clip(scratch, np.float32(0.0), top, out=scratch)
+    np.copyto(out, scratch, casting="unsafe")  # truncation of x + 0.5 (x >= 0): rounding
+    return out

@@ -309,6 +309,14 @@ class SimulatedOptics:
             self._patterns[mask] = pattern
         return pattern
 
+    def light_now(self) -> np.ndarray | None:
+        """The photon rate per grid pixel (fftshifted, read-only, cached) for the light at this moment,
+        or None while the shutter is closed. ``expected_photons`` is this times the exposure, placed in
+        ``grid_roi``. The array is replaced (a new object) when the sample or the masks change, so
+        its identity can key a cache (the fast simulated camera does)."""
+        with self._lock:
+            return self._pattern_per_s(self._shown_mask) if self._shutter_open else None
+
     def expected_photons(self, exposure_s: float, out: np.ndarray | None = None) -> np.ndarray:
         """Incident photons per sensor pixel during an exposure (float64, sensor_shape).
 

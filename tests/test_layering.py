@@ -43,8 +43,9 @@ def test_each_package_imports_only_the_layers_below_it(folder):
 
 
 def test_reconstruct_needs_only_numerical_packages():
-    # numpy and scipy; numba only for the fused kernels, which have a numpy fallback; torch only in
-    # the optional deep image prior (the `neural` extra), imported inside its function
+    # numpy and scipy; numba only for the fused kernels and pyfftw / mkl_fft only for the FFT backends,
+    # which all have a numpy fallback; torch only in the optional deep image prior (the `neural` extra),
+    # imported inside its function
     third_party = set()
     for path in (ROOT / "reconstruct").glob("*.py"):
         if path.name == "deep_prior.py":
@@ -57,7 +58,7 @@ def test_reconstruct_needs_only_numerical_packages():
     import sys
 
     third_party -= set(sys.stdlib_module_names) | {"__future__"}
-    assert third_party <= {"numpy", "scipy", "numba"}, third_party
+    assert third_party <= {"numpy", "scipy", "numba", "pyfftw", "mkl_fft"}, third_party
 
 
 def test_the_deep_prior_imports_torch_only_when_called():

@@ -1,4 +1,6 @@
 """FFT backends and the mask-chunk threading of maskrun.reconstruct give identical numerics."""
+import json
+
 import numpy as np
 import pytest
 
@@ -7,7 +9,7 @@ from maskrun.reconstruct import fft as rfft
 from maskrun.reconstruct import solvers as S
 
 
-@pytest.mark.parametrize("backend", ["numpy", "scipy-1", "scipy-all"])
+@pytest.mark.parametrize("backend", rfft.available_backends())
 @pytest.mark.parametrize("dtype", [np.complex64, np.complex128])
 def test_backends_match_numpy_reference(backend, dtype):
     # Reference: numpy.fft.fft2 / ifft2 with norm="ortho" in complex128 (outside implementation).
@@ -21,6 +23,78 @@ def test_backends_match_numpy_reference(backend, dtype):
     np.testing.assert_allclose(b, np.fft.fft2(a.astype(np.complex128), norm="ortho"), atol=tol)
     plan.inverse(b)
     np.testing.assert_allclose(b, a, atol=tol)
+
+
+@pytest.mark.parametrize("backend", rfft.available_backends())
+@pytest.mark.parametrize("aligned", [True, False])
+def test_unnormalised_plans_match_numpy_default_scaling(backend, aligned):
+    # Reference: numpy.fft.fft2 (norm="backward": no factor) and ifft2 times N (norm="forward") in complex128.
+    rng = np.random.default_rng(3)
+    shape = (4, 16, 20)
+    a = (rng.standard_normal(shape) + 1j * rng.standard_normal(shape)).astype(np.complex64)
+    plan = rfft.FFTPlan(shape, np.complex64, backend, unitary=False)
+    assert plan.scale == pytest.approx(np.sqrt(16 * 20))
+    raw = rfft.aligned_empty((a.size + 1,), np.complex64)
+    b = raw[:a.size].reshape(shape) if aligned else raw[1:].reshape(shape)  # FFTW keeps a plan for each
+    b[...] = a
+    plan.forward(b)
+    np.testing.assert_allclose(b, np.fft.fft2(a.astype(np.complex128)), rtol=1e-5, atol=1e-3)
+    plan.inverse(b)
+    np.testing.assert_allclose(b, a * (16 * 20), rtol=1e-5, atol=1e-2)
+
+
+class _BatchedOrthoBug:
+    """Reproduces the fault reported for mkl_fft 2.3.2 (maskrun issue 17, measured on this machine):
+    a batched fft2(norm="ortho") scales by 1/sqrt(K N) instead of 1/sqrt(N); norm=None is right."""
+
+    @staticmethod
+    def _k(x):
+        return int(np.prod(x.shape[:-2])) if x.ndim > 2 else 1
+
+    def fft2(self, x, axes=(-2, -1), norm=None):
+        out = np.fft.fft2(x, axes=axes, norm=norm)
+        return out / np.sqrt(self._k(x)) if norm == "ortho" else out
+
+    def ifft2(self, x, axes=(-2, -1), norm=None):
+        out = np.fft.ifft2(x, axes=axes, norm=norm)
+        return out / np.sqrt(self._k(x)) if norm == "ortho" else out
+
+
+def test_correctness_check_refuses_a_wrongly_scaled_backend(monkeypatch, tmp_path):
+    monkeypatch.setenv("MASKRUN_FFT_CACHE", str(tmp_path))
+    monkeypatch.setattr(rfft, "_mkl_fft", _BatchedOrthoBug())
+    monkeypatch.setattr(rfft, "_CHECKED", {})
+    monkeypatch.setattr(rfft, "_CHOICE_CACHE", {})
+    shape = (8, 64, 64)
+    assert "mkl" in rfft.available_backends()
+    problem = rfft.check_backend("mkl", shape, np.complex64, unitary=True)
+    assert "norm ratio 0.35355" in problem  # 1/sqrt(8)
+    assert rfft.check_backend("mkl", shape, np.complex64, unitary=False) == ""  # unnormalised is right
+    assert rfft.check_backend("mkl", (1, 64, 64), np.complex64, unitary=True) == ""  # K = 1 hides the fault
+    with pytest.raises(rfft.BackendIncorrect, match="wrong transforms"):
+        rfft.FFTPlan(shape, np.complex64, "mkl")
+    with pytest.warns(RuntimeWarning, match="FFT backend mkl refused"):
+        choice = rfft._choose(shape, np.complex64, unitary=True)
+    assert choice != "mkl"
+
+
+def test_choice_is_kept_on_disk_and_rechecked(monkeypatch, tmp_path):
+    monkeypatch.setenv("MASKRUN_FFT_CACHE", str(tmp_path))
+    monkeypatch.setattr(rfft, "_CHOICE_CACHE", {})
+    shape = (2, 64, 48)
+    first = rfft._choose(shape, np.complex64, single_thread=True)
+    ranking = json.loads((tmp_path / "fft-ranking.json").read_text())
+    entry = ranking["2x64x48 complex64 workers=1"]
+    assert entry["choice"] == first and set(entry["seconds"]) >= {"numpy", "scipy-1"}
+    # a later process takes the kept choice without measuring again
+    entry["choice"] = "scipy-1"
+    (tmp_path / "fft-ranking.json").write_text(json.dumps(ranking))
+    rfft._CHOICE_CACHE.clear()
+    assert rfft._choose(shape, np.complex64, single_thread=True) == "scipy-1"
+    if "fftw-1" in rfft.available_backends():
+        rfft.FFTPlan((3, 40, 40), np.complex64, "fftw-1", unitary=False).forward(rfft.aligned_empty((3, 40, 40), np.complex64))
+        wisdom = json.loads(rfft.wisdom_path().read_text())
+        assert wisdom["wisdom"] and any(len(w) > 0 for w in wisdom["wisdom"])
 
 
 def test_unknown_backend_and_worker_limit():
@@ -64,5 +138,5 @@ def test_solve_gives_same_answer_with_any_backend():
     x = rng.standard_normal((32, 32)) + 1j * rng.standard_normal((32, 32))
     m = octanary_masks(6, x.shape, seed=2)
     y = forward(x, m)
-    for backend in ("numpy", "scipy-1"):
+    for backend in [b for b in rfft.available_backends() if not b.endswith("-all")]:
         assert relative_error(x, solve(y, m, fft_backend=backend, dtype=np.complex128).estimate) < 1e-10

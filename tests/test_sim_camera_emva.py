@@ -10,7 +10,8 @@ Outside reference: EMVA Standard 1288, Release 4.0 Linear (2021):
   sigma_y^2 = var(y_A - y_B) / 2, which removes fixed-pattern noise; the light may be
   varied through the exposure time.
 The camera model itself is tested in test_camera_model.py; this file tests the driver that
-wraps it (its settings, its gain and binning handling, its frame path).
+wraps it (its settings, its gain and binning handling, its frame path), with both its
+exact and its fast noise rendering.
 """
 
 from __future__ import annotations
@@ -38,8 +39,20 @@ SETTINGS = dict(
 )
 
 
+_MODE = {"noise_rendering": "exact"}
+
+
+@pytest.fixture(autouse=True, params=["exact", "fast"])
+def noise_rendering(request):
+    """Every test runs on both renderings: the fast one (Gaussian shot noise from a bank) must keep
+    the same EMVA 1288 linear relations as the exact one (Poisson)."""
+    _MODE["noise_rendering"] = request.param
+    yield request.param
+    _MODE["noise_rendering"] = "exact"
+
+
 def camera(**overrides):
-    return build_driver("camera", "simulated", {**SETTINGS, **overrides})
+    return build_driver("camera", "simulated", {**SETTINGS, **_MODE, **overrides})
 
 
 def pair_stats(cam, exposure_s):

@@ -262,3 +262,68 @@ def test_frame_shape_follows_roi_and_binning(r0, c0, rows, cols, binning):
         frame = cam.grab(1.0)
     assert frame.pixels.shape == cam.frame_shape == (rows // binning, cols // binning)
     assert frame.pixels.max() <= cam.max_dn
+
+
+def test_fast_rendering_follows_the_light_on_the_bench_like_the_exact_one():
+    # The fast mode computes the mean image once per light and must place it as the exact mode does:
+    # the mean over many frames of each rendering estimates offset + K (eta mu_p + dark) per pixel
+    # (EMVA 1288 R4.0 Linear, sec. 2, mu_y = mu_y.dark + K eta mu_p), and the per-pixel temporal
+    # variance is K^2 (read^2 + mu_e) + 1/12 (same section) in both.
+    optics = _optics(rate=4e6)
+    mod = SimulatedModulator(SimulatedModulator.Settings(), BenchContext(optics=optics))
+    mod.open()
+    mod.load(optics.masks)
+    optics.shutter_open = True
+    noise = dict(quantum_efficiency=0.6, gain_dn_per_e=0.25, read_noise_e=3.0, dark_current_e_per_s=5.0,
+                 offset_dn=100.0, bit_depth=16, full_well_e=1e6, seed=9, sensor_shape=(24, 24))
+    means, variances = {}, {}
+    for mode in ("exact", "fast"):
+        cam = _camera(BenchContext(optics=optics), noise_rendering=mode, **noise)
+        with cam:
+            cam.exposure_s = 0.01
+            for k in (0, 2):
+                mod.show(k)
+                frames = np.stack([cam.grab(1.0).pixels.astype(np.float64) for _ in range(400)])
+                means[mode, k] = frames.mean(axis=0)
+                variances[mode, k] = frames.var(axis=0, ddof=1)
+    model_mean = {}
+    for k in (0, 2):
+        mod.show(k)
+        mu_e = 0.6 * optics.expected_photons(0.01) + 0.05
+        expected_var = 0.25 ** 2 * (9.0 + mu_e) + 1 / 12
+        model_mean[k] = 100.0 + 0.25 * mu_e
+        for mode in ("exact", "fast"):
+            se = np.sqrt(expected_var / 400)
+            assert np.max(np.abs(means[mode, k] - model_mean[k]) / se) < 5.0, (mode, k)
+            assert np.median(variances[mode, k] / expected_var) == pytest.approx(1.0, abs=0.05), (mode, k)
+    assert np.abs(means["fast", 0] - means["fast", 2]).max() > 10  # the light of each mask, not one cached image
+
+
+def test_fast_rendering_is_seeded_and_its_frames_are_independent_at_each_pixel():
+    def frames(seed, n=6):
+        with _camera(noise_rendering="fast", standalone_photon_rate_per_s=1e5, sensor_shape=(128, 128),
+                     seed=seed, bit_depth=16, full_well_e=1e6) as cam:
+            return [cam.grab(1.0).pixels.astype(np.float64) for _ in range(n)]
+
+    a, b = frames(1), frames(1)
+    assert all(np.array_equal(x, y) for x, y in zip(a, b))
+    c = frames(2)
+    assert not np.array_equal(a[0], c[0])
+    # temporal noise of one pixel in two frames: uncorrelated (correlation of the differences to the mean)
+    d = [x - 100.0 - 0.25 * 0.6 * 1e5 * 0.01 for x in a]
+    for i in range(len(d) - 1):
+        r = np.corrcoef(d[i].ravel(), d[i + 1].ravel())[0, 1]
+        assert abs(r) < 0.03  # 16384 pixels: the standard error of r is 0.008
+
+
+def test_fast_rendering_delivers_at_the_exposure_rate_in_real_time():
+    with _camera(noise_rendering="fast", real_time=True, standalone_photon_rate_per_s=1e5,
+                 sensor_shape=(512, 512)) as cam:
+        cam.exposure_s = 0.01
+        cam.grab(1.0)
+        t0 = time.monotonic()
+        for _ in range(20):
+            cam.trigger()
+            cam.grab(1.0)
+        per_frame = (time.monotonic() - t0) / 20
+    assert per_frame >= 0.01  # never faster than the exposure
