@@ -137,6 +137,22 @@ def phase_images(masks: np.ndarray, mapping: DeviceMapping, profile: ModulatorPr
     return out
 
 
+def grey_image(grey: np.ndarray, mapping: DeviceMapping) -> np.ndarray:
+    """(rows, cols) uint8 device image for a raw grey-level image (H, W) in mask pixels: mapped like a
+    mask (superpixel, offset, active region, fixed level outside), with no response, correction or ramp."""
+    grey = np.asarray(grey)
+    if grey.shape != tuple(mapping.mask_shape):
+        raise _bad(f"grey image has shape {grey.shape}, the mapping expects {tuple(mapping.mask_shape)}",
+                   "give one grey level per mask pixel (the run's [grid] shape)")
+    if not np.issubdtype(grey.dtype, np.integer) or grey.min() < 0 or grey.max() > 255:
+        raise _bad(f"grey image must hold integer levels 0..255, got {grey.dtype} {grey.min()}..{grey.max()}",
+                   "an 8-bit display shows levels 0..255")
+    out = np.full(mapping.screen_shape, mapping.outside_grey, dtype=np.uint8)
+    values, where = _to_device(grey, mapping)
+    out[where] = values.astype(np.uint8)
+    return out
+
+
 def binary_images(masks: np.ndarray, mapping: DeviceMapping, on_grey: int = 255, off_grey: int = 0) -> np.ndarray:
     """(K, rows, cols) uint8 images for 0/1 amplitude masks (K, H, W)."""
     masks = np.asarray(masks)

@@ -37,7 +37,8 @@ import numpy as np
 from pydantic import Field, model_validator
 
 from .base import DriverSettings, Modulator
-from .display_images import (BINARY, PHASE, binary_images, check_mask_family, make_mapping, phase_images)
+from .display_images import (BINARY, PHASE, binary_images, check_mask_family, grey_image, make_mapping,
+                             phase_images)
 from .errors import DeviceDisconnected, DeviceFault, DeviceMisconfigured, DeviceTimeout
 from .modulator_profile import ModulatorProfile, ModulatorProfileError, linear_profile
 
@@ -195,6 +196,7 @@ class DisplayModulator(Modulator):
         self._presented_at = -float("inf")
         self._profile: ModulatorProfile | None = None
         self._correction: np.ndarray | None = None
+        self._grey_shown = False  # a show_grey image, not the masks, is in the display process
 
     # ------------------------------------------------------------ config time
     def _path(self, name: str) -> Path:
@@ -222,6 +224,8 @@ class DisplayModulator(Modulator):
                         f"{lam * 1e9:.1f} nm (the response depends on the wavelength)", device="modulator",
                         hint="measure the response at this laser's wavelength, or check [laser] wavelength_m")
                 self._profile = prof
+            elif getattr(self.context, "modulator_profile", None) is not None:
+                self._profile = self.context.modulator_profile  # [modulator] profile (checked against the laser)
             else:
                 self._profile = linear_profile(s.grey_levels_per_2pi, self.wavelength_m or 1.0)
         return self._profile
@@ -392,23 +396,51 @@ class DisplayModulator(Modulator):
             images = self.images  # a reconnect to the same screen: the images are already computed
         else:
             images = self.device_images(masks)
+        self._upload(images, "uploading the mask images")
+        self._grey_shown = False
+        self.images, self._images_key = images, key
+        self.image_sha256 = [hashlib.sha256(np.ascontiguousarray(im).tobytes()).hexdigest() for im in images]
+
+    def _upload(self, images: np.ndarray, what: str) -> None:
         folder = tempfile.mkdtemp(prefix="maskrun-display-")
         try:
             path = os.path.join(folder, "images.npy")
             np.save(path, images)
-            reply = self._request(self.settings.open_timeout_s, "uploading the mask images", op="load", path=path)
+            reply = self._request(self.settings.open_timeout_s, what, op="load", path=path)
         finally:
             shutil.rmtree(folder, ignore_errors=True)
         if reply.get("count") != images.shape[0]:
             raise DeviceFault(f"uploaded {images.shape[0]} images, the display process holds {reply.get('count')}",
                               device="modulator")
-        self.images, self._images_key = images, key
-        self.image_sha256 = [hashlib.sha256(np.ascontiguousarray(im).tobytes()).hexdigest() for im in images]
+
+    def show_grey(self, grey: np.ndarray) -> None:
+        """Show raw grey levels (H, W), mapped to device pixels like a mask; see ``Modulator.show_grey``.
+        The display process then holds this one image; the next ``show(k)`` uploads the masks again."""
+        if self.images is None or self.mapping is None:
+            raise DeviceMisconfigured("no masks loaded", device="modulator", hint="call load(masks) before show_grey()")
+        image = grey_image(grey, self.mapping)
+        self._grey_shown = True
+        self.shown = None
+        self._upload(image[None], "uploading a grey image")
+        s = self.settings
+        reply = self._request(s.present_timeout_s, "showing a grey image", op="show", index=0, readback=s.readback_check)
+        self._presented_at = time.monotonic()
+        record = {"time_s": time.time(), "index": None, "grey_sha256": hashlib.sha256(image.tobytes()).hexdigest(),
+                  **{k: reply[k] for k in ("serial", "msc", "ust", "mode") if k in reply}}
+        self.presented.append(record)
+        if reply.get("mode") == "skip":
+            raise DeviceFault("the X server skipped the grey image", device="modulator")
+        if s.readback_check and not (reply.get("match") and reply.get("grey")):
+            raise DeviceFault("the screen read back after showing a grey image is not that image", device="modulator",
+                              hint="another window may cover the modulator's screen, or the X server alters colours")
 
     def show(self, index: int) -> None:
         index = int(index)
         if self.images is None:
             raise DeviceMisconfigured("no masks loaded", device="modulator", hint="call load(masks) before show()")
+        if self._grey_shown:  # a calibration image replaced the masks in the display process
+            self._upload(self.images, "uploading the mask images again")
+            self._grey_shown = False
         if not 0 <= index < len(self.images):
             raise DeviceMisconfigured(f"mask {index} outside 0..{len(self.images) - 1}", device="modulator",
                                       hint="the run asked for a mask that was not loaded")
@@ -461,8 +493,13 @@ class DisplayModulator(Modulator):
             out.update(on_grey=s.on_grey, off_grey=s.off_grey)
         else:
             prof = self.phase_profile()
-            out["response"] = {"source": str(self._path(s.profile)) if s.profile else
-                               f"linear, {s.grey_levels_per_2pi:g} grey levels per 2 pi", **prof.model_dump()}
+            if s.profile:
+                source = str(self._path(s.profile))
+            elif getattr(self.context, "modulator_profile", None) is not None:
+                source = "[modulator] profile of the bench config"
+            else:
+                source = f"linear, {s.grey_levels_per_2pi:g} grey levels per 2 pi"
+            out["response"] = {"source": source, **prof.model_dump()}
             out["blaze_period_px"] = list(s.blaze_period_px)
             if s.correction:
                 corr = self._correction

@@ -109,7 +109,7 @@ class _Objective:
     def __init__(self, ws, sup, floor_fraction=1e-12):
         K, H, W = ws.shape
         self.H, self.W = H, W
-        self.masks = ws.masks.astype(np.complex128)
+        self.masks = ws.masks.astype(np.complex128) * ws.fft_scale  # the true masks (ws.masks carry 1/fft_scale); this plan is unitary
         self.masks_c = np.conj(self.masks)
         self.y = ws.y.astype(np.float64)
         plan = FFTPlan(ws.shape, np.complex128)

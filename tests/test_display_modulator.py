@@ -351,3 +351,37 @@ def test_a_window_over_the_modulator_is_pushed_under_or_refused(xserver, tmp_pat
     finally:
         mod.close()
         d.close()
+
+
+def test_a_raw_grey_image_reaches_the_screen_and_the_masks_come_back(xserver, tmp_path):
+    # the calibration path ('maskrun measure-response'): raw grey levels, mapped like a mask but with no
+    # response table, correction or ramp; the next show(k) shows mask k again. The response here comes
+    # from the bench's [modulator] profile (BenchContext.modulator_profile), not the driver's settings.
+    masks = quantized_phase_masks(2, (24, 20), levels=8, seed=4)
+    g = np.arange(256)
+    prof = ModulatorProfile(wavelength_m=WAVELENGTH_M, grey_levels=g.tolist(),
+                            phase_rad=(2 * np.pi * (g / 210.0) ** 1.2).tolist(), measured=True, method="test")
+    ctx = BenchContext(config_dir=str(tmp_path), wavelength_m=WAVELENGTH_M, modulator_profile=prof)
+    mod = build_driver("modulator", "display", {"x_display": xserver, "settle_s": 0.0, "screen": 1,
+                                                "superpixel_px": [2, 3], "offset_px": [50, 60], "outside_grey": 9,
+                                                "readback_check": True}, ctx)
+    mod.open()
+    try:
+        mod.load(masks)
+        grey = np.random.default_rng(8).integers(0, 256, (24, 20))
+        mod.show_grey(grey)
+        shot = _grey_shot(xserver)
+        want = np.full(SCREEN1, 9, dtype=np.uint8)
+        want[50:50 + 48, 60:60 + 60] = np.repeat(np.repeat(grey, 2, axis=0), 3, axis=1)
+        assert np.array_equal(shot, want), f"{np.count_nonzero(shot != want)} pixels differ"
+        assert mod.shown is None  # no mask is on the device now
+        mod.show(1)
+        want = expected_phase_image(masks[1], prof, SCREEN1, (2, 3), (50, 60), (50, 60, 48, 60), 9, None, (0.0, 0.0))
+        assert np.array_equal(_grey_shot(xserver), want)
+        assert mod.describe()["response"]["source"] == "[modulator] profile of the bench config"
+        with pytest.raises(DeviceMisconfigured, match="0..255"):
+            mod.show_grey(np.full((24, 20), 300))
+        with pytest.raises(DeviceMisconfigured, match="shape"):
+            mod.show_grey(np.zeros((20, 24), dtype=int))
+    finally:
+        mod.close()

@@ -214,8 +214,11 @@ def test_files_without_recorded_response_fall_back_to_the_stored_config(run_path
     with h5py.File(old, "a") as f:  # as written before the response was recorded
         for name in ("response_gain_dn_per_e", "response_offset_dn", "response_quantum_efficiency", "response_profile"):
             del f["entry"].attrs[name]
-        f["entry"].attrs["config_toml"] = f["entry"].attrs["config_toml"].replace(
-            "gain_dn_per_e = 0.3\noffset_dn", "gain_dn_per_e = 0.25\noffset_dn")
+        text = f["entry"].attrs["config_toml"]
+        head, table = text.split("\n[response]", 1)  # the [response] table's gain (the camera has its own)
+        assert "\ngain_dn_per_e = 0.3\n" in table
+        f["entry"].attrs["config_toml"] = head + "\n[response]" + table.replace(
+            "\ngain_dn_per_e = 0.3\n", "\ngain_dn_per_e = 0.25\n", 1)
     with RunFile(old) as rf:
         assert rf.response_attrs() is None
         assert response_for_run(rf, "x").gain_dn_per_e == pytest.approx(0.25)
