@@ -3,6 +3,9 @@ PYTHON ?= python3
 VENV := .venv
 BIN := $(VENV)/bin
 CORE := $(VENV)/.installed-core
+# setuptools announces every editable install of a package-dir mapping with an informational
+# "Editable installation" notice (not a problem in this project's packaging); keep installs quiet
+PIP := PYTHONWARNINGS="ignore:Editable installation" $(BIN)/python -m pip
 TEST := $(VENV)/.installed-test
 
 .PHONY: demo test venv soak bench clean
@@ -13,13 +16,13 @@ $(BIN)/python:
 
 # the demo needs only the core dependencies
 $(CORE): pyproject.toml $(BIN)/python
-	$(BIN)/python -m pip install --quiet -e .
+	$(PIP) install --quiet -e .
 	touch $(CORE)
 
 # the tests add the test extra (view, video, cluster, scikit-image) and the example camera plugin
 $(TEST): $(CORE) tests/plugin_example/pyproject.toml
-	$(BIN)/python -m pip install --quiet -e '.[test]'
-	$(BIN)/python -m pip install --quiet -e tests/plugin_example
+	$(PIP) install --quiet -e '.[test]'
+	$(PIP) install --quiet -e tests/plugin_example
 	touch $(TEST)
 
 venv: $(TEST)
