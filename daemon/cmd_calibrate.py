@@ -4,6 +4,7 @@ frames -> flat-field map beside the profile) and
 
 from __future__ import annotations
 
+import math
 import time
 from pathlib import Path
 
@@ -194,12 +195,24 @@ def cmd_calibrate(args) -> int:
     return 0
 
 
+#: The shortest exposure most scientific and machine-vision cameras offer, s (common practice, no source).
+SHORTEST_USUAL_EXPOSURE_S = 1e-5
+
+
 def _plan_bit_depth(cfg) -> int | None:
     """ADC bits for the saturation capacity without a profile: [response] bit_depth, else the driver setting."""
     if cfg.response.bit_depth is not None:
         return int(cfg.response.bit_depth)
     value = cfg.camera.settings.get("bit_depth")
-    return int(value) if isinstance(value, int) and not isinstance(value, bool) else None
+    if isinstance(value, int) and not isinstance(value, bool):
+        return int(value)
+    fmt = cfg.camera.settings.get("pixel_format")  # a GenICam camera: the bits of its (mono) pixel format
+    if cfg.camera.driver == "genicam" and isinstance(fmt, str):
+        from maskrun.drivers.genicam_pixels import MONO_FORMATS
+
+        if fmt in MONO_FORMATS:
+            return MONO_FORMATS[fmt][0]
+    return None
 
 
 def cmd_plan(args) -> int:
@@ -283,6 +296,13 @@ def cmd_plan(args) -> int:
                               accumulating=cfg.reconstruction.enabled and cfg.reconstruction.mode == "accumulate")
     if darks:
         warnings.append(darks)
+    short = plan.exposure_per_frame_s
+    if short is not None and 0 < short < SHORTEST_USUAL_EXPOSURE_S:
+        od = math.log10(SHORTEST_USUAL_EXPOSURE_S / short)
+        warnings.append(f"the exposure per frame would be {short:.3g} s, shorter than most cameras can expose "
+                        f"(about {SHORTEST_USUAL_EXPOSURE_S * 1e6:g} us): far more light than needed reaches the camera. "
+                        f"Attenuate the beam (neutral density of about OD {od:.1f} for a {SHORTEST_USUAL_EXPOSURE_S * 1e6:g} "
+                        "us exposure), or measure the photon rate and give --photon-rate-per-s")
     for w in warnings:
         console.print(f"[yellow]warning:[/] {escape(w)}")
     if not plan.feasible:

@@ -146,3 +146,19 @@ def test_demo_plan_never_saturates(tmp_path):
 def test_nearly_singular_masks_are_refused_not_understated():
     with pytest.raises(PlanError, match="more masks"):
         plan_photons((48, 48), 2, target_relative_error=0.05)
+
+
+@pytest.mark.parametrize("name", ["genicam-camera.toml", "display-slm.toml"])
+def test_plan_runs_on_the_shipped_real_bench_configs(name):
+    # the shipped configs of real benches (no [simulation], no camera profile, no [response] bit_depth):
+    # the ADC bits come from the GenICam pixel format (Mono12: 12 bits per pixel, GenICam Pixel Format
+    # Naming Convention 2.x, the Mono12 entry — from memory); and the laser's whole power on the camera
+    # would need an exposure far below what cameras offer, which the plan says with the attenuation needed
+    from importlib import resources
+
+    path = resources.files("maskrun.configs").joinpath(name)
+    res = _plan(str(path), "--relative-error", "0.02")
+    out = " ".join(res.stdout.split())  # the console wraps lines
+    assert res.returncode == 0, res.stderr + res.stdout
+    assert "ADC range, no camera profile: (2^12 - 1 - 100 DN)" in out
+    assert "shorter than most cameras can expose" in out and "neutral density of about OD 4." in out
