@@ -1,4 +1,4 @@
-"""The README's reprocessing recipe, followed literally: the code block between its markers is run as
+"""The reprocessing recipe of docs/run-file.md, followed literally: the code block between its markers is run as
 written on a demo run file (the embedded demo bench, default settings) and must reproduce the stored
 estimate's error against the known sample."""
 
@@ -13,7 +13,7 @@ from maskrun.daemon.config import demo_config_text, parse_config
 from maskrun.daemon.foreground import RunRequest, run_foreground
 from maskrun.daemon.runfile import RunFile
 
-README = Path(__file__).resolve().parents[1] / "README.md"
+README = Path(__file__).resolve().parents[1] / "docs" / "run-file.md"  # the run-file document
 
 
 def _recipe() -> str:
