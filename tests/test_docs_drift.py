@@ -421,3 +421,15 @@ def test_python_imports_in_the_docs_resolve():
                     if n and not hasattr(module, n):
                         problems.append(f"{doc.name}: {mod} has no {n}")
     assert not problems, "\n".join(problems)
+
+
+def test_links_between_the_docs_point_at_files_that_exist():
+    """Every relative markdown link in README.md, DEVELOPERS.md and docs/ names a file of the repository."""
+    broken = []
+    for doc in DOC_FILES:
+        for target in re.findall(r"\]\(([^)#\s]+)(?:#[^)]*)?\)", doc.read_text(encoding="utf-8")):
+            if "://" in target or target.startswith("mailto:"):
+                continue
+            if not (doc.parent / target).exists():
+                broken.append(f"{doc.relative_to(ROOT)}: {target}")
+    assert not broken, "links to files that do not exist:\n" + "\n".join(broken)
