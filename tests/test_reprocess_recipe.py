@@ -20,7 +20,7 @@ def _recipe() -> str:
     text = README.read_text()
     block = re.search(r"<!-- reprocessing recipe: start -->\s*```python\n(.*?)```\s*<!-- reprocessing recipe: end -->",
                       text, re.S)
-    assert block, "the README's reprocessing recipe (between its markers) is missing"
+    assert block, "the reprocessing recipe of docs/run-file.md (between its markers) is missing"
     return block.group(1)
 
 
@@ -34,7 +34,7 @@ def test_the_readme_recipe_reproduces_the_stored_estimate_on_a_demo_run(tmp_path
         stored = float(rf.estimate_info()["true_error"][-1])
         assert float(rf.frame_info()["exposure_s"][0]) == 0.005
     namespace = {"RUN_FILE": str(summary.output_path)}
-    exec(compile(_recipe(), "README.md (reprocessing recipe)", "exec"), namespace)  # literally as written
+    exec(compile(_recipe(), "docs/run-file.md (reprocessing recipe)", "exec"), namespace)  # literally as written
     printed = capsys.readouterr().out
     m = re.search(r"error against the known sample: ([0-9.]+)%", printed)
     assert m, printed
