@@ -53,7 +53,7 @@ def _execute(cfg, args) -> int:
     if args.figure and Path(summary.output_path).exists():
         png = plot_run_summary(summary.output_path, Path(summary.output_path).with_suffix(".png"))
         console.print(f"Figure: [bold]{png}[/]")
-    console.print(f"Read the file: [bold]maskrun inspect {summary.output_path}[/] (or h5py; layout in README.md)")
+    console.print(f"Read the file: [bold]maskrun inspect {summary.output_path}[/] (or h5py; layout in docs/run-file.md)")
     return 0 if summary.state.value == "finished" else 1
 
 

@@ -68,7 +68,7 @@ def needs_repair(path: str | Path) -> bool:
     """True when the file cannot be opened for writing in place: a writer died with it open (the SWMR
     write flags are still set), or another process (a viewer, an h5py reader with swmr=True) holds it
     open, so HDF5's file lock refuses a writer. Both are solved the same way: a fresh copy put in place
-    atomically (``repair_run_file``); readers keep the old inode (see docs/hardening-and-recovery.md)."""
+    atomically (``repair_run_file``); readers keep the old inode (see docs/overnight-and-faults.md)."""
     try:
         with h5py.File(path, "r+", libver="latest"):
             return False

@@ -14,7 +14,7 @@ behind loses whole messages (ZeroMQ drops for that subscriber only), never
 slowing acquisition. Gaps show up as jumps in ``seq``. The run file never drops
 anything.
 
-Protection against subscribers (see docs/hardening-and-recovery.md):
+Protection against subscribers (see docs/service.md):
 
 - The socket is an XPUB in manual mode: ZeroMQ hands every subscription to the
   publisher instead of storing it, and only subscriptions that are a prefix of a

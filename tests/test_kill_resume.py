@@ -1,7 +1,7 @@
 """Crash safety: SIGKILL a foreground `maskrun run` / `maskrun resume` at random moments, then check
 the file and resume it to the end.
 
-The promise (README, "Crash safety"): no complete frame set is lost. A frame set is complete when
+The promise (docs/run-file.md, "How the file stays valid"): no complete frame set is lost. A frame set is complete when
 the daemon announces it (the stream's ``frameset`` message; the writer thread has flushed it by then);
 a live subscriber records every announcement, and after each kill every announced set must be in
 the file, complete and bit-identical. Frames of a set in progress may be lost (at most

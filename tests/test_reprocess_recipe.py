@@ -1,4 +1,4 @@
-"""The README's reprocessing recipe, followed literally: the code block between its markers is run as
+"""The reprocessing recipe of docs/run-file.md, followed literally: the code block between its markers is run as
 written on a demo run file (the embedded demo bench, default settings) and must reproduce the stored
 estimate's error against the known sample."""
 
@@ -13,14 +13,14 @@ from maskrun.daemon.config import demo_config_text, parse_config
 from maskrun.daemon.foreground import RunRequest, run_foreground
 from maskrun.daemon.runfile import RunFile
 
-README = Path(__file__).resolve().parents[1] / "README.md"
+README = Path(__file__).resolve().parents[1] / "docs" / "run-file.md"  # the run-file document
 
 
 def _recipe() -> str:
     text = README.read_text()
     block = re.search(r"<!-- reprocessing recipe: start -->\s*```python\n(.*?)```\s*<!-- reprocessing recipe: end -->",
                       text, re.S)
-    assert block, "the README's reprocessing recipe (between its markers) is missing"
+    assert block, "the reprocessing recipe of docs/run-file.md (between its markers) is missing"
     return block.group(1)
 
 
@@ -34,7 +34,7 @@ def test_the_readme_recipe_reproduces_the_stored_estimate_on_a_demo_run(tmp_path
         stored = float(rf.estimate_info()["true_error"][-1])
         assert float(rf.frame_info()["exposure_s"][0]) == 0.005
     namespace = {"RUN_FILE": str(summary.output_path)}
-    exec(compile(_recipe(), "README.md (reprocessing recipe)", "exec"), namespace)  # literally as written
+    exec(compile(_recipe(), "docs/run-file.md (reprocessing recipe)", "exec"), namespace)  # literally as written
     printed = capsys.readouterr().out
     m = re.search(r"error against the known sample: ([0-9.]+)%", printed)
     assert m, printed

@@ -1,6 +1,6 @@
 """A complete, tiny camera driver: a camera that delivers a moving test pattern.
 
-This is the worked example of DEVELOPERS.md ("Adding a camera"). A real driver
+This is the worked example of docs/devices.md ("Adding a camera"). A real driver
 replaces the body of ``_read_sensor`` with a call into the vendor's library.
 """
 
