@@ -1,6 +1,6 @@
 """The run file: one HDF5 file per run, valid at every moment.
 
-Layout (format ``maskrun-run`` version 1; documented in README.md):
+Layout (format ``maskrun-run`` version 1; documented in docs/run-file.md):
 
     /entry                      group, NX_class=NXentry; attributes below
     /entry/frames               (N, H, W) camera counts as delivered, one frame per chunk
