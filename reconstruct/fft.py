@@ -187,6 +187,10 @@ class _FFTWPlans:
     dtype: np.dtype
     threads: int
     plans: dict = field(default_factory=dict)
+    # A pyfftw plan holds its arrays: update_arrays + execute from two threads at once would
+    # transform one thread's buffer into the other's (seen as wrong solver results when two chunks
+    # of the same shape shared one plan). Each FFTPlan owns its plans; the lock guards the rest.
+    lock: threading.Lock = field(default_factory=threading.Lock)
 
     def _plan(self, inverse: bool, aligned: bool):
         key = (inverse, aligned)
@@ -211,8 +215,9 @@ class _FFTWPlans:
     def run(self, buf: np.ndarray, inverse: bool) -> None:
         aligned = buf.ctypes.data % _ALIGN == 0
         p = self._plan(inverse, aligned)
-        p.update_arrays(buf, buf)
-        p.execute()
+        with self.lock:
+            p.update_arrays(buf, buf)
+            p.execute()
 
 
 _FFTW_PLANS: dict[tuple, _FFTWPlans] = {}
@@ -418,7 +423,8 @@ class FFTPlan:
         self.scale = 1.0 if self.unitary else float(np.sqrt(self.shape[-1] * self.shape[-2]))
         self._fftw = None
         if self.backend.startswith("fftw"):
-            self._fftw = _fftw_plans(self.shape, self.dtype, 1 if self.backend == "fftw-1" else _cpu_workers())
+            # plans of its own, never shared with another FFTPlan that may run in another thread
+            self._fftw = _FFTWPlans(self.shape, self.dtype, 1 if self.backend == "fftw-1" else _cpu_workers())
 
     def forward(self, buf: np.ndarray) -> np.ndarray:
         """Forward DFT of ``buf`` in place (returns ``buf``); ``scale`` x the unitary one."""

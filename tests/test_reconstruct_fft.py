@@ -140,3 +140,38 @@ def test_solve_gives_same_answer_with_any_backend():
     y = forward(x, m)
     for backend in [b for b in rfft.available_backends() if not b.endswith("-all")]:
         assert relative_error(x, solve(y, m, fft_backend=backend, dtype=np.complex128).estimate) < 1e-10
+
+
+@pytest.mark.parametrize("backend", [b for b in rfft.available_backends() if b.startswith("fftw")])
+def test_plans_of_one_shape_transform_their_own_buffers_from_two_threads(backend):
+    # The solvers run equal-shaped mask chunks in two threads, each with its own FFTPlan. A pyfftw
+    # plan holds the arrays it transforms, so two FFTPlans sharing one plan transformed each
+    # other's buffers (wrong solver results under load). Reference: numpy.fft.fft2, unnormalised.
+    from concurrent.futures import ThreadPoolExecutor
+
+    shape = (4, 64, 64)
+    rng = np.random.default_rng(3)
+    plans = [rfft.FFTPlan(shape, np.complex128, backend, unitary=False) for _ in range(2)]
+    assert plans[0]._fftw is not plans[1]._fftw  # no pyfftw plan is shared between two FFTPlans
+    inputs = [rng.standard_normal(shape) + 1j * rng.standard_normal(shape) for _ in range(2)]
+    expected = [np.fft.fft2(a) for a in inputs]
+
+    def transform_many(i):
+        worst = 0.0
+        for _ in range(300):
+            buf = rfft.aligned_empty(shape, np.complex128)
+            buf[...] = inputs[i]
+            plans[i].forward(buf)
+            worst = max(worst, float(np.max(np.abs(buf - expected[i]))))
+        return worst
+
+    import sys
+
+    interval = sys.getswitchinterval()
+    sys.setswitchinterval(1e-6)  # switch threads often, as a loaded machine does
+    try:
+        with ThreadPoolExecutor(2) as pool:
+            worst = list(pool.map(transform_many, [0, 1]))
+    finally:
+        sys.setswitchinterval(interval)
+    assert max(worst) < 1e-9, worst
