@@ -11,6 +11,7 @@ exist) and dividing by the flat field (per-pixel response, mean 1, from
 
 from __future__ import annotations
 
+import weakref
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -62,20 +63,51 @@ class FrameCheck:
         return not self.problems
 
 
+def pixel_sum(pixels: np.ndarray) -> float:
+    """Sum of all pixels, exact for integer frames.
+
+    8- and 16-bit frames are summed down the columns in uint32 first (exact for up to 65537 rows
+    of 16-bit pixels), which is about twice as fast at 1 MP as a float64 sum over every pixel."""
+    if pixels.dtype.kind == "u" and pixels.dtype.itemsize <= 2 and pixels.ndim == 2 and pixels.shape[0] <= 65537:
+        return float(int(pixels.sum(axis=0, dtype=np.uint32).sum(dtype=np.uint64)))
+    return float(np.sum(pixels, dtype=np.float64))
+
+
+_DARK_TOTAL: list = [None, 0.0]  # [weak reference to a read-only dark frame, its total in DN]
+
+
+def dark_total_dn(dark_dn: np.ndarray | float, pixel_count: int) -> float:
+    """Total dark level over the frame (DN): the sum of the dark frame, or level x pixels.
+
+    The sum of a *read-only* dark frame is kept and reused while that same array is passed again
+    (the sequencer makes its mean dark frame read-only, and replaces it rather than changing it),
+    so it costs one pass per set of darks instead of one per frame."""
+    if not np.ndim(dark_dn):
+        return float(dark_dn) * pixel_count
+    if not dark_dn.flags.writeable:
+        ref = _DARK_TOTAL[0]
+        if ref is not None and ref() is dark_dn:
+            return _DARK_TOTAL[1]
+        total = float(np.sum(dark_dn, dtype=np.float64))
+        _DARK_TOTAL[:] = [weakref.ref(dark_dn), total]
+        return total
+    return float(np.sum(dark_dn, dtype=np.float64))
+
+
 def check_frame(pixels: np.ndarray, dark_dn: np.ndarray | float, response: Response, limits: CheckLimits,
                 flat: np.ndarray | None = None) -> FrameCheck:
-    """Check one frame. Vectorised; a 1024x1024 frame costs a few milliseconds.
+    """Check one frame. Vectorised; a 1024x1024 16-bit frame costs about 0.2 ms (one pass for the
+    peak, one for the sum; the saturated pixels are counted only when the peak reaches the level).
 
     flat: per-pixel response (mean 1) or None; the photon count is then sum((pixels - dark) / flat) / gain / QE.
     """
     threshold = limits.saturation_level * limits.max_dn
     peak = int(pixels.max())
-    saturated = float(np.count_nonzero(pixels >= threshold)) / pixels.size
+    saturated = float(np.count_nonzero(pixels >= threshold)) / pixels.size if peak >= threshold else 0.0
     if flat is not None:
         signal_dn = float(np.sum(np.subtract(pixels, dark_dn, dtype=np.float64) / flat))
     else:
-        dark_total = np.sum(dark_dn, dtype=np.float64) if np.ndim(dark_dn) else float(dark_dn) * pixels.size
-        signal_dn = float(np.sum(pixels, dtype=np.float64)) - dark_total
+        signal_dn = pixel_sum(pixels) - dark_total_dn(dark_dn, pixels.size)
     electrons = signal_dn / response.gain_dn_per_e
     photons = electrons / response.quantum_efficiency
     flags = 0

@@ -7,10 +7,12 @@ space of the output folder minus a reserve (``[run] min_free_disk_mb``):
 * expected + reserve > free            -> ``DiskSpaceError`` (the run does not start, nothing written);
 * expected > half of (free - reserve)  -> a warning (other writers may fill the rest overnight).
 
-During the run ``DiskGuard.check()`` (called before every frame, one ``statvfs``
-call) stops the run safely when the free space drops below the reserve plus
+During the run ``DiskGuard.check()`` (called before every frame) stops the run safely when the free space drops below the reserve plus
 room for two more frames, so the file is closed cleanly before the disk is
-actually full. If the disk fills anyway (another process), the HDF5 write
+actually full. It reads the free space (``statvfs``, about 0.4 ms) at most every
+``recheck_s`` seconds while there is plenty of room, and in between counts down
+by the bytes of the frames written since; near the limit it reads before every
+frame (within 256 MB of it). If the disk fills anyway (another process), the HDF5 write
 fails with ENOSPC, which the sequencer turns into a safe stop (the store
 raises ``StoreWriteError``); everything flushed before stays readable.
 """
@@ -19,6 +21,7 @@ from __future__ import annotations
 
 import math
 import shutil
+import time
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -105,16 +108,44 @@ def plan_disk(folder: str | Path, expected_bytes: int, reserve_bytes: int) -> Di
 
 
 class DiskGuard:
-    """Checked before each frame: raises DiskSpaceError when free space < reserve + two frames."""
+    """Checked before each frame: raises DiskSpaceError when free space < reserve + two frames.
 
-    def __init__(self, folder: str | Path, reserve_bytes: int, bytes_per_frame: int):
+    ``recheck_s``: longest time between two real readings of the free space while the estimate
+    (last reading minus the frames written since) stays more than ``plenty_bytes`` above the
+    limit; closer to the limit every check reads, so another writer would have to fill
+    ``plenty_bytes`` (256 MB by default) within ``recheck_s`` to get past the guard (and then the
+    write's ENOSPC still stops the run safely). ``clock``: seconds, monotonic."""
+
+    def __init__(self, folder: str | Path, reserve_bytes: int, bytes_per_frame: int, *, recheck_s: float = 0.5,
+                 plenty_bytes: int = 256 * MB, clock=time.monotonic):
         self.folder = Path(folder)
         self.reserve_bytes = int(reserve_bytes)
-        self.margin_bytes = 2 * (int(bytes_per_frame) + 2 * _ROW_OVERHEAD_BYTES) + 16 * 1024
+        self.frame_bytes = int(bytes_per_frame) + 2 * _ROW_OVERHEAD_BYTES
+        self.margin_bytes = 2 * self.frame_bytes + 16 * 1024
+        self.recheck_s = float(recheck_s)
+        self.plenty_bytes = int(plenty_bytes)
+        self._clock = clock
+        self._last_free: int | None = None
+        self._last_read_s = -math.inf
+        self._frames_since_read = 0
+        self.readings = 0  # real statvfs readings so far
+
+    @property
+    def limit_bytes(self) -> int:
+        return self.reserve_bytes + self.margin_bytes
 
     def check(self) -> int:
+        """Free bytes (read, or estimated from the last reading); raises DiskSpaceError below the limit."""
+        now = self._clock()
+        if self._last_free is not None and now - self._last_read_s < self.recheck_s:
+            estimate = self._last_free - self._frames_since_read * self.frame_bytes
+            if estimate > self.limit_bytes + self.plenty_bytes:
+                self._frames_since_read += 1
+                return estimate
         free = free_bytes(self.folder)
-        if free < self.reserve_bytes + self.margin_bytes:
+        self.readings += 1
+        self._last_free, self._last_read_s, self._frames_since_read = free, now, 1
+        if free < self.limit_bytes:
             raise DiskSpaceError(
                 f"{self.folder}: free disk down to {free / MB:.2f} MB (reserve {self.reserve_bytes / MB:.2f} MB): "
                 "the run stopped before the disk is full. Free some space, then continue with 'maskrun resume'"

@@ -871,6 +871,7 @@ class Sequencer:
             acc_sq += np.square(frame.pixels, dtype=np.float64)
             self.darks += 1
         self.dark_dn = (acc / count).astype(np.float32)
+        self.dark_dn.setflags(write=False)  # replaced, never changed: checks.dark_total_dn keeps its sum
         if count > 1:  # temporal noise of one dark frame, mean over pixels, DN -> electrons
             var_dn = np.maximum(acc_sq - acc * acc / count, 0.0).sum() / ((count - 1) * acc.size)
             self.read_noise_e = float(np.sqrt(var_dn)) / float(self.bench.response.gain_dn_per_e)

@@ -75,3 +75,26 @@ def test_preview_is_small_and_preserves_the_mean_of_flat_frames(rows, cols):
     pv = downsample_preview(px, 128)
     assert max(pv.shape) <= 128 and pv.dtype == np.float32
     assert np.allclose(pv, 7)
+
+
+@settings(max_examples=40, deadline=None)
+@given(rows=st.integers(1, 300), cols=st.integers(1, 300), bits=st.sampled_from([8, 12, 16]), seed=st.integers(0, 2**31),
+       level=st.floats(0.5, 1.0))
+def test_fast_frame_check_matches_a_plain_float64_reference(rows, cols, bits, seed, level):
+    # Reference: numpy's float64 sum and comparison over every pixel (the check before it was sped up).
+    rng = np.random.default_rng(seed)
+    dtype = np.uint8 if bits == 8 else np.uint16
+    pixels = rng.integers(0, 2**bits, (rows, cols)).astype(dtype)
+    dark = rng.uniform(0, 50, (rows, cols)).astype(np.float32)
+    dark.setflags(write=False)
+    lim = _limits(max_dn=2**bits - 1, saturation_level=level)
+    for _ in range(2):  # the second call reuses the kept dark total
+        chk = check_frame(pixels, dark, RESP, lim)
+        want_dn = np.sum(pixels, dtype=np.float64) - np.sum(dark, dtype=np.float64)
+        assert abs(chk.electrons - want_dn / RESP.gain_dn_per_e) <= 1e-9 * max(1.0, abs(want_dn))
+        assert chk.saturated_fraction == np.count_nonzero(pixels >= level * (2**bits - 1)) / pixels.size
+        assert chk.peak_dn == int(pixels.max())
+    fresh = dark.copy()  # writeable: never kept; a changed dark gives a changed total
+    fresh += 1.0
+    assert abs(check_frame(pixels, fresh, RESP, lim).electrons - chk.electrons + pixels.size / RESP.gain_dn_per_e) \
+        <= 1e-6 * pixels.size

@@ -12,7 +12,7 @@ import pytest
 from rich.console import Console
 
 from maskrun.daemon.config import parse_config
-from maskrun.daemon.disk import DiskSpaceError, expected_run_bytes, free_bytes, series_passes
+from maskrun.daemon.disk import DiskGuard, DiskSpaceError, expected_run_bytes, free_bytes, series_passes
 from maskrun.daemon.foreground import RunRequest, run_foreground
 from maskrun.daemon.recovery import needs_repair
 from maskrun.daemon.runfile import RunFile
@@ -178,3 +178,28 @@ def test_store_level_enospc_is_a_typed_error_and_earlier_frames_survive(tiny_dis
         assert rf.frame_count >= len(written) - 1
         for i in range(min(rf.frame_count, len(written))):
             np.testing.assert_array_equal(rf.frame(i), written[i])
+
+
+def test_guard_reads_the_disk_rarely_with_room_and_before_every_frame_near_the_limit(tiny_disk):
+    """The guard costs one statvfs per ``recheck_s`` while there is room, yet still stops in time when
+    another writer fills the disk: near the limit it reads the real free space before every frame."""
+    now = [0.0]
+    frame = 4096
+    roomy = DiskGuard(tiny_disk, reserve_bytes=0, bytes_per_frame=frame, recheck_s=0.5, plenty_bytes=256 * 1024,
+                      clock=lambda: now[0])
+    for _ in range(50):
+        roomy.check()
+    assert roomy.readings == 1  # 50 frames inside 0.5 s, far from the limit: one real reading
+    now[0] += 0.6
+    roomy.check()
+    assert roomy.readings == 2  # the interval passed: read again
+    # Another writer leaves just above the limit: every check must read, and the stop comes in time.
+    tight = DiskGuard(tiny_disk, reserve_bytes=0, bytes_per_frame=frame, recheck_s=3600.0, plenty_bytes=256 * 1024,
+                      clock=lambda: now[0])
+    _fill(tiny_disk, tight.limit_bytes + 128 * 1024)
+    tight.check()
+    tight.check()
+    assert tight.readings == 2
+    _fill(tiny_disk, tight.limit_bytes // 2)
+    with pytest.raises(DiskSpaceError, match="free disk down to"):
+        tight.check()
