@@ -9,7 +9,8 @@ once the X server reports the image presented (Present extension: the refresh it
 screen); the sequencer then waits ``settle_s`` (liquid crystal: tens of milliseconds).
 
 The X connection lives in a child process (``display_x11``), so the GUI loop cannot stall
-acquisition or the control socket. When the window is closed, the screen unplugged or the X
+acquisition or the control socket (the link to it: ``display_link``; the screen choice:
+``display_screens``). When the window is closed, the screen unplugged or the X
 server stops, ``show`` raises ``DeviceDisconnected``: the sequencer closes the shutter, tries
 to reconnect (a new window) and pauses if it cannot.
 
@@ -39,57 +40,12 @@ from pydantic import Field, model_validator
 from .base import DriverSettings, Modulator
 from .display_images import (BINARY, PHASE, binary_images, check_mask_family, grey_image, make_mapping,
                              phase_images)
+from .display_link import DisplayLink
+from .display_screens import _GEOMETRY, _screen_line, choose_screen, label_screens  # noqa: F401
 from .errors import DeviceDisconnected, DeviceFault, DeviceMisconfigured, DeviceTimeout
 from .modulator_profile import ModulatorProfile, ModulatorProfileError, linear_profile
 
 __all__ = ["DisplayModulator", "choose_screen", "load_correction"]
-
-_GEOMETRY = re.compile(r"^(\d+)x(\d+)\+(\d+)\+(\d+)$")
-
-
-def _screen_line(s: dict) -> str:
-    return (f"  {s['index']}: {s['label']}  {s['width']}x{s['height']}+{s['x']}+{s['y']}"
-            f"{'  (primary)' if s.get('primary') else ''}")
-
-
-def label_screens(screens: list[dict]) -> list[dict]:
-    """Give every screen a unique label: its monitor name, qualified 'S/NAME' by the X screen when
-    the name repeats (as with several X screens of one server)."""
-    counts = collections.Counter(s["name"] for s in screens)
-    return [{**s, "label": s["name"] if counts[s["name"]] == 1 else f"{s['x_screen']}/{s['name']}"} for s in screens]
-
-
-def choose_screen(spec, screens: list[dict]) -> dict:
-    """The screen ``spec`` names: an index (int or digits), a name ('HDMI-1', '1/screen'), or a
-    geometry 'WxH+X+Y' (optionally 'S/WxH+X+Y'). DeviceMisconfigured listing the screens otherwise."""
-    screens = label_screens(screens)
-    listing = "\n".join(_screen_line(s) for s in screens)
-    hint = "set [modulator.settings] screen to one of the indices, names or geometries listed"
-    if spec is None or (isinstance(spec, str) and not spec.strip()):
-        raise DeviceMisconfigured(f"no screen chosen for the modulator; the X server has:\n{listing}", device="modulator",
-                                  hint=hint)
-    if isinstance(spec, int) or (isinstance(spec, str) and spec.strip().isdigit()):
-        i = int(spec)
-        if 0 <= i < len(screens):
-            return screens[i]
-        raise DeviceMisconfigured(f"there is no screen {i}; the X server has:\n{listing}", device="modulator", hint=hint)
-    text = spec.strip()
-    x_screen, rest = None, text
-    if "/" in text and text.split("/", 1)[0].isdigit():
-        x_screen, rest = int(text.split("/", 1)[0]), text.split("/", 1)[1]
-    pool = [s for s in screens if x_screen is None or s["x_screen"] == x_screen]
-    m = _GEOMETRY.match(rest)
-    if m:
-        w, h, x, y = (int(v) for v in m.groups())
-        found = [s for s in pool if (s["width"], s["height"], s["x"], s["y"]) == (w, h, x, y)]
-    else:
-        found = [s for s in pool if s["label"] == text or s["name"] == rest]
-    if len(found) == 1:
-        return found[0]
-    if len(found) > 1:
-        raise DeviceMisconfigured(f"screen {spec!r} matches {len(found)} screens; the X server has:\n{listing}",
-                                  device="modulator", hint="give the index or the 'S/NAME' label instead")
-    raise DeviceMisconfigured(f"no screen {spec!r} on the X server; it has:\n{listing}", device="modulator", hint=hint)
 
 
 def load_correction(path: Path, grey_levels_per_2pi: float) -> np.ndarray:
@@ -128,7 +84,7 @@ def load_correction(path: Path, grey_levels_per_2pi: float) -> np.ndarray:
     return img.astype(np.float64) * (2 * np.pi / float(grey_levels_per_2pi))
 
 
-class DisplayModulator(Modulator):
+class DisplayModulator(DisplayLink, Modulator):
     """Phase SLM or DMD driven as a display: full-screen grey images on one screen of the X server."""
 
     class Settings(DriverSettings):
@@ -198,7 +154,7 @@ class DisplayModulator(Modulator):
         self._correction: np.ndarray | None = None
         self._grey_shown = False  # a show_grey image, not the masks, is in the display process
 
-    # ------------------------------------------------------------ config time
+    # ------------------------------------------------------------ config time (the child process: display_link)
     def _path(self, name: str) -> Path:
         p = Path(name).expanduser()
         return p if p.is_absolute() else Path(self.context.config_dir) / p
@@ -240,90 +196,6 @@ class DisplayModulator(Modulator):
                 s = self.settings
                 self._correction = load_correction(self._path(s.correction),
                                                    s.correction_grey_levels_per_2pi or s.grey_levels_per_2pi)
-
-    # ------------------------------------------------------------ the child process
-    def _spawn(self) -> None:
-        try:
-            import Xlib  # noqa: F401
-        except ImportError:
-            raise DeviceMisconfigured("the display modulator needs python-xlib", device="modulator",
-                                      hint="pip install 'maskrun[display]'") from None
-        env = dict(os.environ)
-        if self.settings.x_display:
-            env["DISPLAY"] = self.settings.x_display
-        if not env.get("DISPLAY"):
-            raise DeviceDisconnected("no X display: DISPLAY is not set and x_display is not given", device="modulator",
-                                     hint="set [modulator.settings] x_display (e.g. ':0') or run where DISPLAY is set")
-        self._replies = queue.Queue()
-        self._lost = None
-        self._proc = subprocess.Popen([sys.executable, "-m", "maskrun.drivers.display_x11"], stdin=subprocess.PIPE,
-                                      stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=env, text=True, bufsize=1)
-        threading.Thread(target=self._read_stdout, args=(self._proc,), daemon=True, name="display-replies").start()
-        threading.Thread(target=self._read_stderr, args=(self._proc,), daemon=True, name="display-stderr").start()
-
-    def _read_stdout(self, proc) -> None:
-        for line in proc.stdout:
-            try:
-                msg = json.loads(line)
-            except json.JSONDecodeError:
-                self._stderr.append(line.rstrip())
-                continue
-            if "lost" in msg:
-                self._lost = msg["lost"]
-            self._replies.put(msg)
-        self._replies.put(None)  # end of the child's output
-
-    def _read_stderr(self, proc) -> None:
-        for line in proc.stderr:
-            self._stderr.append(line.rstrip())
-
-    def _disconnected(self, why: str) -> DeviceDisconnected:
-        tail = "; ".join(list(self._stderr)[-3:])
-        return DeviceDisconnected(f"{why}{' (' + tail + ')' if tail and 'lost' not in why else ''}", device="modulator",
-                                  hint="check that the modulator's screen is connected and switched on and that the "
-                                  "X server runs; the run reconnects or pauses with the shutter closed")
-
-    def _wait(self, want_id: int | None, timeout_s: float, what: str) -> dict:
-        t_end = time.monotonic() + timeout_s
-        while True:
-            left = t_end - time.monotonic()
-            if left <= 0:
-                raise DeviceTimeout(f"{what}: no answer from the X server within {timeout_s:g} s", device="modulator",
-                                    hint="check the X server and the modulator's screen")
-            try:
-                msg = self._replies.get(timeout=left)
-            except queue.Empty:
-                continue
-            if msg is None:
-                self._replies.put(None)
-                raise self._disconnected(f"{what}: the display link ended: {self._lost or 'the display process exited'}")
-            if "lost" in msg:
-                raise self._disconnected(f"{what}: display lost: {msg['lost']}")
-            if want_id is None or msg.get("id") == want_id:
-                return msg
-
-    def _request(self, timeout_s: float, what: str, **req) -> dict:
-        if self._lost:
-            raise self._disconnected(f"{what}: display lost: {self._lost}")
-        if self._proc is None or self._proc.poll() is not None:
-            raise self._disconnected(f"{what}: the display is not open")
-        self._next_id += 1
-        req["id"] = self._next_id
-        try:
-            self._proc.stdin.write(json.dumps(req) + "\n")
-            self._proc.stdin.flush()
-        except (BrokenPipeError, OSError, ValueError):
-            raise self._disconnected(f"{what}: the display process is gone") from None
-        try:
-            msg = self._wait(self._next_id, timeout_s, what)
-        except DeviceTimeout:
-            # a display process that does not answer is replaced: the next request finds the device not
-            # open (DeviceDisconnected), and the sequencer's reconnect opens a new window
-            self._kill()
-            raise
-        if "error" in msg:
-            raise DeviceMisconfigured(f"{what}: {msg['error']}", device="modulator")
-        return msg
 
     # ------------------------------------------------------------ life cycle
     def open(self) -> None:

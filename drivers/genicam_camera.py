@@ -4,7 +4,7 @@ maker's GenTL producer, driven by the standard feature names (SFNC).
 Optional extra ``genicam`` (``harvesters`` on the official ``genicam`` binding); imported on
 open, so ``maskrun drivers`` lists the driver without it. Finding the producer and the camera:
 ``genicam_discovery``; features and units: ``genicam_features``; ROI steps: ``genicam_roi``;
-pixel formats: ``genicam_pixels``.
+pixel formats: ``genicam_pixels``; trigger and frame delivery: ``genicam_delivery``.
 
 Trigger: ``software`` (``TriggerSoftware`` once per frame: the frame follows the mask),
 ``hardware`` (frame start on ``trigger_line``, for benches where the modulator triggers the
@@ -41,16 +41,14 @@ from .genicam_discovery import (
     import_harvesters,
 )
 from .genicam_features import Features, IntRange
-from .genicam_frames import FrameCounter, buffer_pixels, buffer_value
+from .genicam_delivery import _STATUS_PERIOD_S, GenicamDelivery, _as_device_error, _line  # noqa: F401
+from .genicam_frames import FrameCounter, buffer_pixels, buffer_value  # noqa: F401
 from .genicam_pixels import MONO_FORMATS, MONO_PREFERENCE, UnsupportedPixelFormat, layout_for
 from .genicam_roi import AxisLimits, RoiRefused, plan_roi
 
 __all__ = ["GenicamCamera"]
 
-_STATUS_PERIOD_S = 1.0  # read-only status values (temperature) are read at most this often
-
-
-class GenicamCamera(Camera):
+class GenicamCamera(GenicamDelivery, Camera):
     """Any GenICam camera (GigE Vision, USB3 Vision, CoaXPress, Camera Link) through its maker's GenTL producer."""
 
     class Settings(DriverSettings):
@@ -243,111 +241,6 @@ class GenicamCamera(Camera):
         return self._acquirer
 
     # ------------------------------------------------------------------ trigger
-    def _apply_trigger(self, mode: str) -> None:
-        f, s = self._features, self.settings
-        if mode == "software":
-            f.set_trigger("Software")
-        elif mode == "hardware":
-            f.set_trigger(s.trigger_line, s.trigger_activation)
-        else:
-            f.trigger_off()
-        self._trigger = mode
-
-    @property
-    def trigger_mode(self) -> TriggerMode:
-        return TriggerMode.hardware if self._trigger == "hardware" else TriggerMode.software
-
-    @trigger_mode.setter
-    def trigger_mode(self, value) -> None:
-        value = TriggerMode(value)
-        if value is self.trigger_mode:
-            return
-        with self._lock:
-            if value is TriggerMode.software:
-                want = "free-running" if self.settings.trigger == "free-running" else "software"
-            else:
-                want = "hardware"
-            if self._acquirer is None:
-                self._trigger = want
-                return
-            self._stop()
-            try:
-                self._apply_trigger(want)
-            finally:
-                self._start()
-
-    def trigger(self) -> None:
-        with self._lock:
-            ia = self._require_open()
-            if self._trigger == "hardware":
-                return
-            self._drain(ia)  # a frame waiting now was exposed before this mask: never hand it out
-            if self._trigger == "software":
-                self._features.software_trigger()
-            else:
-                self._skip = self.settings.free_running_skip_frames
-
-    def _drain(self, ia) -> None:
-        while True:
-            buf = self._fetch(ia, 0.001)
-            if buf is None:
-                return
-            buf.parent.queue_buffer(buf)
-
-    # ------------------------------------------------------------------ frames
-    def _fetch(self, ia, timeout_s: float):
-        from genicam.gentl import GenericException as GenTLError
-
-        try:
-            return ia.try_fetch(timeout=max(timeout_s, 1e-4), is_raw=True)
-        except GenTLError as exc:
-            raise DeviceDisconnected(f"the camera stopped delivering ({_line(exc)})", device="camera") from None
-
-    def grab(self, timeout_s: float) -> Frame:
-        deadline = time.monotonic() + max(0.0, float(timeout_s))
-        with self._lock:
-            ia = self._require_open()
-            while True:
-                buf = self._fetch(ia, deadline - time.monotonic())
-                if buf is None and time.monotonic() < deadline - 1e-3:
-                    continue  # an incomplete buffer (dropped by the consumer) came back early: keep waiting
-                if buf is None:
-                    raise DeviceTimeout(f"no frame within {timeout_s:g} s ({self._trigger} trigger)", device="camera")
-                host_t = time.time()
-                if self._skip > 0:
-                    self._skip -= 1
-                    buf.parent.queue_buffer(buf)
-                    continue
-                try:
-                    return self._frame(buf, host_t)
-                finally:
-                    with contextlib.suppress(Exception):
-                        buf.parent.queue_buffer(buf)
-
-    def _frame(self, buf, host_t: float) -> Frame:
-        layout, plan = self._layout, self._plan
-        pixels = buffer_pixels(buf, layout, self._features, plan.camera, plan.crop)
-        cam_id = buffer_value(buf, "frame_id")
-        frame_id, id_source = self._counter.frame_id(cam_id, count_kept=self._trigger == "free-running")
-        ts_ns = buffer_value(buf, "timestamp_ns")
-        stamp, ts_source = self._counter.timestamp_s(ts_ns, host_t)
-        meta = {
-            "camera": f"{self._info.vendor} {self._info.model}", "serial": self._info.serial, "device_id": self._info.id,
-            "producer": self._producer, "pixel_format": layout.name, "bit_depth": layout.bit_depth,
-            "frame_id_source": id_source, "camera_frame_id": None if cam_id is None else int(cam_id),
-            "timestamp_source": ts_source, "trigger": self._trigger, "roi_read_by_camera": list(plan.camera),
-            "host_crop": not plan.exact, "binning": self.settings.binning,
-            "exposure_source": "ExposureTime" if self.settings.exposure_control == "camera" else
-            "recorded only (exposure_control = none: the camera keeps its own exposure)",
-        }
-        if ts_ns is not None:
-            meta["camera_timestamp_ns"] = int(ts_ns)
-        if time.monotonic() - self._status_t >= _STATUS_PERIOD_S:
-            with contextlib.suppress(Exception):
-                self._status = self._features.status_values()
-            self._status_t = time.monotonic()
-        meta.update(self._status)
-        return Frame(pixels, frame_id, stamp, self._exposure_s, meta)
 
     # ------------------------------------------------------------------ geometry / format
     @property
@@ -458,16 +351,3 @@ class GenicamCamera(Camera):
                 raise DeviceDisconnected("the GenICam camera is not open", device="camera")
             f.set_if_present("GainAuto", "Off")
             f.set_float("Gain", float(value), "gain")
-
-
-def _line(exc: Exception) -> str:
-    text = str(exc).strip()
-    return text.splitlines()[0] if text else type(exc).__name__
-
-
-def _as_device_error(exc: Exception, what: str):
-    from genicam.gentl import GenericException as GenTLError
-
-    if isinstance(exc, GenTLError):
-        return DeviceDisconnected(f"{what} failed: {_line(exc)}", device="camera")
-    return DeviceMisconfigured(f"{what} failed: {_line(exc)}", device="camera")

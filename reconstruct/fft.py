@@ -32,21 +32,13 @@ load. Very small transforms skip the measurement and use numpy.
 """
 from __future__ import annotations
 
-import json
 import os
-import threading
 import time
-import warnings
-from dataclasses import dataclass, field
-from pathlib import Path
+from dataclasses import dataclass
 
 import numpy as np
 import scipy.fft as _sfft
 
-try:  # FFTW: a dependency where pyfftw has wheels (pyproject marker); numpy/scipy otherwise
-    import pyfftw as _pyfftw
-except ImportError:  # pragma: no cover - depends on the platform
-    _pyfftw = None
 try:  # optional, never a dependency: used only if installed and it passes the correctness check
     import mkl_fft as _mkl_fft
 except ImportError:
@@ -59,10 +51,28 @@ _BACKENDS = ("numpy", "scipy-1", "scipy-all", "fftw-1", "fftw-all", "mkl")
 _CHOICE_CACHE: dict[tuple, str] = {}
 _CHECKED: dict[tuple, str] = {}  # (backend, shape, dtype, unitary) -> "" (correct) or what was wrong
 _MEASURE_MIN_ELEMENTS = 64 * 64
-_RANK_ROUNDS = 7
 _MAX_WORKERS: int | None = None
-_LOCK = threading.RLock()
-_ALIGN = 64
+
+# the FFTW plans and the on-disk cache live in fft_fftw.py, the backend choice in fft_choice.py;
+# every name stays reachable as fft.<name>, and the choice looks the caches above up here at call time
+from .fft_fftw import (  # noqa: E402,F401
+    _ALIGN,
+    _FFTW_PLANS,
+    _LOCK,
+    _FFTWPlans,
+    _cache_dir,
+    _fftw_plans,
+    _load_wisdom,
+    _pyfftw,
+    _read_json,
+    _ranking_path,
+    _save_wisdom,
+    _versions,
+    _write_json,
+    aligned_empty,
+    wisdom_path,
+)
+from .fft_choice import _RANK_ROUNDS, _choose, _time_backend, check_backend, chosen_backends, rank_backends  # noqa: E402,F401
 
 
 class BackendIncorrect(RuntimeError):
@@ -98,137 +108,6 @@ def available_backends() -> tuple[str, ...]:
     if _mkl_fft is not None:
         out.append("mkl")
     return tuple(out)
-
-
-def aligned_empty(shape, dtype) -> np.ndarray:
-    """An uninitialised C-contiguous array whose data start on a 64-byte boundary (FFTW's SIMD plans want it)."""
-    dtype = np.dtype(dtype)
-    n = int(np.prod(shape)) * dtype.itemsize
-    raw = np.empty(n + _ALIGN, np.uint8)
-    off = (-raw.ctypes.data) % _ALIGN
-    return raw[off:off + n].view(dtype).reshape(shape)
-
-
-# --- cache on disk: FFTW wisdom and the backend ranking ---------------------------------------
-def _cache_dir() -> Path:
-    d = os.environ.get("MASKRUN_FFT_CACHE")
-    if d:
-        return Path(d)
-    base = os.environ.get("XDG_CACHE_HOME") or str(Path.home() / ".cache")
-    return Path(base) / "maskrun"
-
-
-def wisdom_path() -> Path:
-    """Where the FFTW wisdom is kept (``$MASKRUN_FFT_CACHE`` or ``~/.cache/maskrun``)."""
-    return _cache_dir() / "fftw-wisdom.json"
-
-
-def _ranking_path() -> Path:
-    return _cache_dir() / "fft-ranking.json"
-
-
-def _versions() -> str:
-    import scipy
-
-    parts = [f"numpy {np.__version__}", f"scipy {scipy.__version__}"]
-    if _pyfftw is not None:
-        parts.append(f"pyfftw {_pyfftw.__version__}")
-    if _mkl_fft is not None:
-        parts.append(f"mkl_fft {getattr(_mkl_fft, '__version__', '?')}")
-    return "; ".join(parts)
-
-
-def _read_json(path: Path) -> dict:
-    try:
-        return json.loads(path.read_text())
-    except (OSError, ValueError):
-        return {}
-
-
-def _write_json(path: Path, obj: dict) -> None:
-    """Atomic write; a cache that cannot be written is only a cache (silently skipped)."""
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        tmp = path.with_name(f".{path.name}.{os.getpid()}.{threading.get_ident()}")
-        tmp.write_text(json.dumps(obj))
-        os.replace(tmp, path)
-    except OSError:
-        pass
-
-
-_WISDOM_LOADED = False
-
-
-def _load_wisdom() -> None:
-    global _WISDOM_LOADED
-    if _WISDOM_LOADED or _pyfftw is None:
-        return
-    _WISDOM_LOADED = True
-    w = _read_json(wisdom_path())
-    if w.get("versions") == _versions() and isinstance(w.get("wisdom"), list):
-        try:
-            _pyfftw.import_wisdom(tuple(bytes.fromhex(s) for s in w["wisdom"]))
-        except (ValueError, TypeError):
-            pass
-
-
-def _save_wisdom() -> None:
-    if _pyfftw is None:
-        return
-    _write_json(wisdom_path(), {"versions": _versions(), "wisdom": [b.hex() for b in _pyfftw.export_wisdom()]})
-
-
-# --- FFTW plans ---------------------------------------------------------------------------------
-@dataclass
-class _FFTWPlans:
-    """Forward and backward FFTW plans for one (shape, dtype, threads), in place, made once."""
-
-    shape: tuple
-    dtype: np.dtype
-    threads: int
-    plans: dict = field(default_factory=dict)
-    # A pyfftw plan holds its arrays: update_arrays + execute from two threads at once would
-    # transform one thread's buffer into the other's (seen as wrong solver results when two chunks
-    # of the same shape shared one plan). Each FFTPlan owns its plans; the lock guards the rest.
-    lock: threading.Lock = field(default_factory=threading.Lock)
-
-    def _plan(self, inverse: bool, aligned: bool):
-        key = (inverse, aligned)
-        p = self.plans.get(key)
-        if p is None:
-            with _LOCK:
-                _load_wisdom()
-                scratch = aligned_empty(self.shape, self.dtype) if aligned else self._misaligned()
-                flags = ("FFTW_MEASURE", "FFTW_DESTROY_INPUT") + (() if aligned else ("FFTW_UNALIGNED",))
-                p = _pyfftw.FFTW(scratch, scratch, axes=(-2, -1),
-                                 direction="FFTW_BACKWARD" if inverse else "FFTW_FORWARD",
-                                 flags=flags, threads=self.threads, planning_timelimit=10.0)
-                self.plans[key] = p
-                _save_wisdom()
-        return p
-
-    def _misaligned(self) -> np.ndarray:
-        n = int(np.prod(self.shape))
-        raw = aligned_empty((n + 1,), self.dtype)
-        return raw[1:].reshape(self.shape)
-
-    def run(self, buf: np.ndarray, inverse: bool) -> None:
-        aligned = buf.ctypes.data % _ALIGN == 0
-        p = self._plan(inverse, aligned)
-        with self.lock:
-            p.update_arrays(buf, buf)
-            p.execute()
-
-
-_FFTW_PLANS: dict[tuple, _FFTWPlans] = {}
-
-
-def _fftw_plans(shape, dtype, threads) -> _FFTWPlans:
-    key = (tuple(shape), np.dtype(dtype).str, threads)
-    with _LOCK:
-        if key not in _FFTW_PLANS:
-            _FFTW_PLANS[key] = _FFTWPlans(tuple(shape), np.dtype(dtype), threads)
-        return _FFTW_PLANS[key]
 
 
 # --- the transforms -----------------------------------------------------------------------------
@@ -273,116 +152,6 @@ def _run(backend: str, buf: np.ndarray, inverse: bool, unitary: bool = True, fft
         buf[...] = out
     return buf
 
-
-def check_backend(backend: str, shape, dtype, unitary: bool = True) -> str:
-    """Check one backend against numpy.fft in complex128 on a random batch of ``shape``.
-
-    Returns "" when both directions agree (relative error below 1e-4 in single and 1e-10 in
-    double precision), else a description of what was wrong. Kept per process.
-    """
-    dtype = np.dtype(dtype)
-    key = (backend, tuple(shape), dtype.str, bool(unitary))
-    if key in _CHECKED:
-        return _CHECKED[key]
-    rng = np.random.default_rng(12345)
-    a = (rng.standard_normal(shape) + 1j * rng.standard_normal(shape)).astype(dtype)
-    ref = a.astype(np.complex128)
-    tol = 1e-4 if dtype == np.complex64 else 1e-10
-    problem = ""
-    try:
-        for inverse in (False, True):
-            b = a.copy()
-            out = _run(backend, b, inverse, unitary)
-            want = (np.fft.ifft2 if inverse else np.fft.fft2)(ref, norm=_norm(inverse, unitary))
-            err = float(np.linalg.norm(out - want) / np.linalg.norm(want))
-            if out.dtype != dtype or out.shape != tuple(shape):
-                problem = f"{'inverse' if inverse else 'forward'} gave {out.dtype} {out.shape}"
-            elif not err < tol:
-                ratio = float(np.linalg.norm(out) / np.linalg.norm(want))
-                problem = (f"{'inverse' if inverse else 'forward'} differs from numpy.fft by {err:.3g} "
-                           f"(relative; norm ratio {ratio:.6g})")
-            if problem:
-                break
-    except Exception as exc:  # a backend that fails on this shape is simply not used
-        problem = f"{type(exc).__name__}: {exc}"
-    _CHECKED[key] = problem
-    return problem
-
-
-def _time_backend(backend: str, buf: np.ndarray, repeats: int, unitary: bool = True) -> float:
-    _run(backend, buf, False, unitary)
-    best = np.inf
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        _run(backend, buf, False, unitary)
-        _run(backend, buf, True, unitary)
-        best = min(best, time.perf_counter() - t0)
-    return best
-
-
-def rank_backends(shape, dtype, candidates, unitary: bool = True, rounds: int = _RANK_ROUNDS) -> dict[str, float]:
-    """Seconds for one forward + inverse transform of ``shape`` per candidate (minimum over
-    ``rounds`` interleaved rounds; every candidate warmed up, i.e. planned, first)."""
-    rng = np.random.default_rng(0)
-    buf = aligned_empty(shape, dtype)
-    buf[...] = (rng.standard_normal(shape) + 1j * rng.standard_normal(shape)).astype(dtype)
-    scale = 1.0 if unitary else 1.0 / np.sqrt(shape[-1] * shape[-2])
-    for b in candidates:
-        _run(b, buf, False, unitary)
-        _run(b, buf, True, unitary)
-        buf *= scale * scale
-    best = {b: np.inf for b in candidates}
-    for _ in range(rounds):
-        for b in candidates:
-            t0 = time.perf_counter()
-            _run(b, buf, False, unitary)
-            _run(b, buf, True, unitary)
-            best[b] = min(best[b], time.perf_counter() - t0)
-            buf *= scale * scale  # keep the values bounded
-    return best
-
-
-def _choose(shape: tuple[int, ...], dtype: np.dtype, unitary: bool = True, single_thread: bool = False) -> str:
-    workers = 1 if single_thread else _cpu_workers()
-    key = (tuple(shape), np.dtype(dtype).str, workers)
-    with _LOCK:
-        if key in _CHOICE_CACHE:
-            return _CHOICE_CACHE[key]
-        if int(np.prod(shape)) < _MEASURE_MIN_ELEMENTS:
-            _CHOICE_CACHE[key] = "numpy"
-            return "numpy"
-        disk_key = f"{'x'.join(map(str, shape))} {np.dtype(dtype).name} workers={workers}"
-        stored = _read_json(_ranking_path())
-        entry = stored.get(disk_key) if stored.get("versions") == _versions() else None
-        choice = None
-        if entry and entry.get("choice") in available_backends():
-            if not check_backend(entry["choice"], shape, dtype, unitary):
-                choice = entry["choice"]
-        if choice is None:
-            candidates = [b for b in available_backends() if not b.endswith("-all") or workers > 1]
-            if workers == 1:
-                candidates = [b for b in candidates if not b.endswith("-all")]
-            good = []
-            for b in candidates:
-                problem = check_backend(b, shape, dtype, unitary)
-                if problem:
-                    warnings.warn(f"FFT backend {b} refused for {shape} {np.dtype(dtype).name}: {problem}",
-                                  RuntimeWarning, stacklevel=3)
-                else:
-                    good.append(b)
-            times = rank_backends(shape, dtype, good, unitary)
-            choice = min(times, key=times.get)
-            if stored.get("versions") != _versions():
-                stored = {"versions": _versions()}
-            stored[disk_key] = {"choice": choice, "seconds": {b: float(t) for b, t in times.items()}}
-            _write_json(_ranking_path(), stored)
-        _CHOICE_CACHE[key] = choice
-        return choice
-
-
-def chosen_backends() -> dict[tuple, str]:
-    """The backend chosen so far for each (shape, dtype, workers) (a copy)."""
-    return dict(_CHOICE_CACHE)
 
 
 @dataclass
