@@ -76,7 +76,7 @@ from .photon_transfer_data import (
     mean_and_temporal_variance,
     step_statistics,
 )
-from .photon_transfer_plot import plot_photon_transfer
+from .photon_transfer_plot import _BLUE, _GREEN, _GREY, _ORANGE, _VERMILION, plot_photon_transfer
 
 __all__ = [
     "QUANTISATION_VARIANCE_DN2",
