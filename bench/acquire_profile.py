@@ -24,6 +24,7 @@ from rich.console import Console
 
 import acquire_bench as ab
 from maskrun.daemon import sequencer as seq_mod
+from maskrun.daemon import sequencer_frames as seq_frames_mod
 from maskrun.daemon import frame_writer as fw_mod
 from maskrun.daemon import stream as stream_mod
 from maskrun.daemon.config import parse_config
@@ -82,8 +83,8 @@ def main() -> None:
     ap.add_argument("--size", type=int, default=1024)
     ap.add_argument("--exposure", type=float, default=0.01)
     args = ap.parse_args()
-    for attr in ("check_frame", "downsample_preview", "electrons_shifted"):
-        wrap_module_fn(seq_mod, attr)
+    for attr in ("check_frame", "downsample_preview", "electrons_shifted"):  # looked up where the frame code lives
+        wrap_module_fn(seq_frames_mod, attr)
     wrap_method(fw_mod.FrameWriter, "submit")
     wrap_method(stream_mod.Publisher, "publish")
     S = seq_mod.Sequencer

@@ -38,19 +38,35 @@ into several passes of lower exposure that are averaged.
 
 from __future__ import annotations
 
-import functools
 import math
-from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
+from .budget_plan import PhotonPlan, PlanInfeasible
+# the precision models live in budget_precision, the plan's type in budget_plan; importable from here
+from .budget_precision import (
+    _CRB_MAX_PIXELS,
+    _DENSE_MAX_PIXELS,
+    _ESTIMATORS,
+    _EULER_GAMMA,
+    PlanError,
+    _bounds,
+    _count,
+    _crb_default,
+    _crb_unit,
+    _default_masks,
+    _grid,
+    _opt_positive,
+    _peak_to_mean,
+    _Precision,
+    _precision_model,
+    _shot_noise_relative_error,
+    predict_relative_error,
+    representative_object,
+    speckle_peak_to_mean,
+)
 from .dose import photon_energy_j, photon_rate_per_s as _power_to_rate
-
-try:  # the reconstruction package provides the bounds; see module docstring
-    from ..reconstruct import bounds as _bounds
-except ImportError:  # pragma: no cover - only when reconstruct/ is absent
-    _bounds = None
 
 __all__ = [
     "PlanError",
@@ -64,286 +80,6 @@ __all__ = [
 ]
 
 DEFAULT_SATURATION_FRACTION = 0.85
-_EULER_GAMMA = 0.5772156649015329
-_CRB_MAX_PIXELS = getattr(_bounds, "CRB_MAX_PIXELS", 32 * 32)
-_DENSE_MAX_PIXELS = 48 * 48  # estimator='dense' on request: J is (2 * 2304)^2 float64 = 170 MB at most
-
-
-class PlanError(ValueError):
-    """The plan request is malformed (missing or contradictory targets, bad numbers)."""
-
-
-class PlanInfeasible(RuntimeError):
-    """The precision cannot be met under the dose limit. ``plan`` holds the numbers."""
-
-    def __init__(self, plan: "PhotonPlan"):
-        self.plan = plan
-        super().__init__(plan.infeasible_reason or "the plan cannot be met")
-
-
-def speckle_peak_to_mean(pixels: int) -> float:
-    """Expected brightest/mean intensity over ``pixels`` speckle pixels: H_n ~ ln n + gamma (n >= 1)."""
-    n = max(int(pixels), 1)
-    if n < 1000:
-        return float(np.sum(1.0 / np.arange(1, n + 1)))
-    return math.log(n) + _EULER_GAMMA + 1.0 / (2 * n)
-
-
-def _shot_noise_relative_error(pixels: int, photons: float) -> float:
-    if _bounds is not None:
-        return _bounds.shot_noise_relative_error(pixels, photons)
-    return math.sqrt(pixels / photons) if photons > 0 else math.inf
-
-
-def representative_object(grid_shape: tuple[int, int], seed: int = 0) -> np.ndarray:
-    """Uniform amplitude, uniformly random phase: the object the planner assumes by default."""
-    rng = np.random.default_rng(seed)
-    return np.exp(1j * rng.uniform(0.0, 2.0 * np.pi, size=grid_shape))
-
-
-def _default_masks(mask_count: int, grid_shape, seed: int, family: str = "octanary", levels: int = 8) -> np.ndarray:
-    from .masks import make_masks
-
-    if family == "file":
-        raise PlanError("masks family 'file': pass the loaded masks (masks=...) to plan for them")
-    try:
-        return make_masks(family, mask_count, tuple(grid_shape), seed=seed, levels=levels)
-    except ValueError as exc:
-        raise PlanError(str(exc)) from None
-
-
-def _peak_to_mean(x, m) -> float:
-    from ..reconstruct.propagation import forward
-
-    y = forward(x, m)
-    return float(np.max(y.max(axis=(1, 2)) / y.mean(axis=(1, 2))))
-
-
-def _crb_unit(x, m, mask_count, grid_shape, estimator: str = "auto") -> tuple[float, float, str]:
-    """(photons * CRB relative error^2, brightest/mean pixel, how it was computed) for object x and masks m.
-
-    Dense Fisher information up to CRB_MAX_PIXELS (unless ``estimator`` says 'matrix_free'),
-    the matrix-free estimate above (``bounds.poisson_crb_matrix_free``, 0.5 % standard error).
-    """
-    if m.shape != (mask_count, *grid_shape):
-        raise PlanError(f"masks must have shape {(mask_count, *grid_shape)}, got {m.shape}")
-    if x.shape != tuple(grid_shape):
-        raise PlanError(f"object_estimate must have the grid shape {tuple(grid_shape)}, got {x.shape}")
-    pixels = grid_shape[0] * grid_shape[1]
-    dense = estimator == "dense" or (estimator == "auto" and pixels <= _CRB_MAX_PIXELS)
-    if estimator == "dense" and pixels > _DENSE_MAX_PIXELS:
-        raise PlanError(f"the dense bound is for grids up to {_DENSE_MAX_PIXELS} pixels (its Fisher matrix is "
-                        f"(2N)^2 numbers); {grid_shape[0]} x {grid_shape[1]} needs estimator='matrix_free' or 'auto'")
-    if dense:
-        crb = _bounds.poisson_crb(x, m, 1.0, max_pixels=max(pixels, _CRB_MAX_PIXELS))
-        how = "dense Fisher information"
-    else:
-        crb = _bounds.poisson_crb_matrix_free(x, m, 1.0, target_relative_std=0.005)
-        how = (f"matrix-free estimate: trace of the inverse Fisher information by {crb.probes} random probes "
-               f"with conjugate gradients, standard error {100 * crb.relative_std:.2g} %")
-    if not dense and crb.identifiable and crb.relative_std > 0.02:
-        raise PlanError(
-            f"the bound for these {mask_count} masks is poorly determined (standard error "
-            f"{100 * crb.relative_std:.0f} % after {crb.probes} probes): the Fisher information is nearly singular; "
-            "use more masks (K >= 4, octanary masks recommended)")
-    if not crb.identifiable or not math.isfinite(crb.relative_error):
-        raise PlanError(
-            f"the object is not identifiable from these {mask_count} masks (the Fisher information is singular"
-            f"{': some pixel is never lit' if not dense else ''}): use more masks (K >= 4, octanary masks "
-            "recommended)"
-        )
-    return crb.photons * crb.relative_error**2, _peak_to_mean(x, m), how
-
-
-@functools.lru_cache(maxsize=16)
-def _crb_default(grid_shape, mask_count, seed, family, mask_seed, levels, estimator) -> tuple[float, float, str]:
-    """_crb_unit for the default object and the family's masks (cached: the dense bound costs seconds at 32 x 32)."""
-    return _crb_unit(representative_object(grid_shape, seed), _default_masks(mask_count, grid_shape, mask_seed,
-                     family, levels), mask_count, grid_shape, estimator)
-
-
-@dataclass
-class _Precision:
-    method: str
-    note: str
-    photons_for_unit_error: float  # photons * relative_error^2 (constant for both models)
-    peak_to_mean: float
-
-
-_ESTIMATORS = ("auto", "dense", "matrix_free")
-
-
-def _precision_model(grid_shape, mask_count, method, object_estimate, masks, seed, family="octanary",
-                     mask_seed=None, levels=8, estimator="auto") -> _Precision:
-    pixels = grid_shape[0] * grid_shape[1]
-    mask_seed = seed if mask_seed is None else int(mask_seed)
-    if estimator not in _ESTIMATORS:
-        raise PlanError(f"estimator must be one of {_ESTIMATORS}, got {estimator!r}")
-    if method == "auto":
-        method = "crb" if _bounds is not None else "shot_noise"
-    if method == "crb":
-        if _bounds is None:
-            raise PlanError("the Cramér-Rao bound needs maskrun.reconstruct.bounds, which is not installed")
-        if object_estimate is None and masks is None:
-            unit, peak, how = _crb_default(tuple(grid_shape), mask_count, seed, family, mask_seed, levels, estimator)
-        else:
-            x = representative_object(grid_shape, seed) if object_estimate is None else np.asarray(object_estimate)
-            m = _default_masks(mask_count, grid_shape, mask_seed, family, levels) if masks is None else np.asarray(masks)
-            unit, peak, how = _crb_unit(x, m, mask_count, grid_shape, estimator)
-        what = "the given masks" if masks is not None else f"{family.replace('_', '-')} masks"
-        note = (f"Poisson Cramér-Rao bound for {mask_count} {what} and "
-                f"{'the given object' if object_estimate is not None else 'a uniform-amplitude random-phase object'}"
-                f" ({how}): {unit / pixels:.3g} detected photons per pixel for a relative error of 1")
-        return _Precision("crb", note, unit, peak)
-    if method == "shot_noise":
-        if object_estimate is not None:
-            x = np.asarray(object_estimate)
-            m = _default_masks(mask_count, grid_shape, mask_seed, family, levels) if masks is None else np.asarray(masks)
-            peak = _peak_to_mean(x, m)
-        else:
-            peak = speckle_peak_to_mean(pixels)
-        # relative error = sqrt(pixels / photons)  =>  photons * error^2 = pixels
-        probe = 1e6 * pixels
-        unit = probe * _shot_noise_relative_error(pixels, probe) ** 2
-        return _Precision("shot_noise", "shot-noise rule: relative error ~ sqrt(pixels / photons) (it asks for "
-                          "fewer photons than the Cramér-Rao bound: a lower estimate)", unit, peak)
-    raise PlanError(f"method must be 'auto', 'crb' or 'shot_noise', got {method!r}")
-
-
-def predict_relative_error(
-    grid_shape: tuple[int, int],
-    mask_count: int,
-    photons_total: float,
-    *,
-    method: str = "auto",
-    object_estimate: np.ndarray | None = None,
-    masks: np.ndarray | None = None,
-    seed: int = 0,
-    mask_family: str = "octanary",
-    mask_seed: int | None = None,
-    mask_levels: int = 8,
-    estimator: str = "auto",
-) -> float:
-    """Expected relative error of the recovered field for ``photons_total`` detected photons
-    (all frames that go into the estimate), by the same models as ``plan_photons``."""
-    grid_shape = _grid(grid_shape)
-    model = _precision_model(grid_shape, _count(mask_count), method, object_estimate, masks, seed, mask_family,
-                             mask_seed, mask_levels, estimator)
-    if not photons_total > 0:
-        return math.inf
-    return math.sqrt(model.photons_for_unit_error / float(photons_total))
-
-
-@dataclass
-class PhotonPlan:
-    """A photon budget. Photon counts are *detected* unless the name says otherwise.
-
-    method / method_note: 'crb' or 'shot_noise', and a sentence saying what was used.
-    target_relative_error, target_phase_precision_rad: the goal (phase ~ relative error).
-    photons_total: detected photons over all frames of all passes.
-    passes: frame sets to average; frames_total = passes * mask_count.
-    photons_per_frame, photons_per_pixel_mean, photons_per_pixel_peak: per frame (detected).
-    frame_ceiling_photons: most detected photons one frame may hold below the saturation
-        ceiling (None without a camera saturation capacity).
-    incident_photons_at_camera: photons_total / quantum_efficiency.
-    photons_on_sample: incident photons / optical_transmission.
-    energy_per_area_j_per_m2: dose on the sample (None without wavelength and area).
-    exposure_per_frame_s, total_exposure_s: with a known photon rate (else None).
-    feasible: False when the dose limit forbids the target; infeasible_reason says why.
-    achievable_relative_error: best relative error under the dose limit (None without a limit).
-    warnings: sentences for the user (saturation, dose, read noise, assumptions).
-    saturation_capacity_e, saturation_note: the capacity the passes were planned with and where it
-        came from (profile, ADC range, given, unknown).
-    """
-
-    method: str
-    method_note: str
-    grid_shape: tuple[int, int]
-    mask_count: int
-    target_relative_error: float
-    target_phase_precision_rad: float
-    photons_total: float
-    passes: int
-    photons_per_frame: float
-    photons_per_pixel_mean: float
-    photons_per_pixel_peak: float
-    peak_to_mean_ratio: float
-    frame_ceiling_photons: float | None
-    quantum_efficiency: float
-    incident_photons_at_camera: float
-    photons_on_sample: float
-    energy_per_area_j_per_m2: float | None
-    exposure_per_frame_s: float | None
-    total_exposure_s: float | None
-    feasible: bool
-    infeasible_reason: str | None
-    achievable_relative_error: float | None
-    warnings: list[str] = field(default_factory=list)
-    saturation_capacity_e: float | None = None
-    saturation_note: str = "unknown"
-
-    @property
-    def frames_total(self) -> int:
-        return self.passes * self.mask_count
-
-    def raise_if_infeasible(self) -> None:
-        """Raise PlanInfeasible (message with the numbers) when the dose limit forbids the target."""
-        if not self.feasible:
-            raise PlanInfeasible(self)
-
-    def summary_rows(self) -> list[tuple[str, str, str]]:
-        """(quantity, value, unit) rows for a printed table."""
-
-        def g(v, d=4):
-            return "n/a" if v is None else f"{v:.{d}g}"
-
-        return [
-            ("method", self.method_note, ""),
-            ("target relative error", g(self.target_relative_error), "1"),
-            ("target phase precision", g(self.target_phase_precision_rad), "rad"),
-            ("detected photons, total", g(self.photons_total), "photons"),
-            ("passes (frame sets averaged)", str(self.passes), "1"),
-            ("frames", str(self.frames_total), "1"),
-            ("detected photons per frame", g(self.photons_per_frame), "photons"),
-            ("detected photons per pixel, mean / peak",
-             f"{g(self.photons_per_pixel_mean)} / {g(self.photons_per_pixel_peak)}", "photons"),
-            ("saturation capacity", f"{g(self.saturation_capacity_e)} ({self.saturation_note})", "e-"),
-            ("incident photons at the camera", g(self.incident_photons_at_camera), "photons"),
-            ("photons on the sample", g(self.photons_on_sample), "photons"),
-            ("energy per area on the sample",
-             g(self.energy_per_area_j_per_m2) if self.energy_per_area_j_per_m2 is not None
-             else "n/a (no illuminated_area_m2: photons only)", "J/m^2"),
-            ("fluence on the sample", g(None if self.energy_per_area_j_per_m2 is None
-                                        else self.energy_per_area_j_per_m2 * 1e-4), "J/cm^2"),
-            ("exposure per frame", g(self.exposure_per_frame_s), "s"),
-            ("total exposure", g(self.total_exposure_s), "s"),
-            ("feasible under the dose limit", "yes" if self.feasible else "NO", ""),
-        ]
-
-
-def _grid(grid_shape) -> tuple[int, int]:
-    try:
-        h, w = (int(v) for v in grid_shape)
-    except (TypeError, ValueError):
-        raise PlanError(f"grid_shape must be (rows, cols), got {grid_shape!r}") from None
-    if h < 1 or w < 1:
-        raise PlanError(f"grid_shape must be two positive sizes, got {grid_shape!r}")
-    return h, w
-
-
-def _count(mask_count) -> int:
-    if int(mask_count) != mask_count or mask_count < 1:
-        raise PlanError(f"mask_count must be a whole number >= 1, got {mask_count!r}")
-    return int(mask_count)
-
-
-def _opt_positive(name: str, value) -> float | None:
-    if value is None:
-        return None
-    value = float(value)
-    if not (math.isfinite(value) and value > 0):
-        raise PlanError(f"{name} must be a finite number > 0, got {value}")
-    return value
 
 
 def plan_photons(

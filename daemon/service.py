@@ -31,13 +31,11 @@ States (``state`` in every reply): idle, preparing, darks, acquiring, paused, fi
 from __future__ import annotations
 
 import collections
-import dataclasses
 import json
 import os
 import threading
 import time
 import traceback
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
 
@@ -47,7 +45,7 @@ import zmq
 from maskrun.drivers import DeviceError
 
 from . import control as C
-from .align import AlignLoop, AlignSettings
+from .align import AlignLoop
 from .bench import Bench, build_bench
 from .config import BenchConfig, ConfigError
 from .safety import Acknowledgement, make_acknowledgement, notice_lines
@@ -61,19 +59,16 @@ from .security import (
     load_server_keys,
     start_authenticator,
 )
-from .run_state import AlertBook, live_state, state_from_file
+from .run_state import AlertBook
 from .safety_readings import RecordingSafetyBox, SafetyReadings
-from .sequencer import Progress, RunControl, RunPlan, RunSummary
+from .service_activities import RUN_STATES, Refused, ServiceActivities, _RunActivity
+from .service_status import LIGHT_SPEED_M_S, PLANCK_J_S, ServiceStatus
 from .stream import Publisher
 
-RUN_STATES = ("preparing", "darks", "acquiring", "paused", "finishing")
-PLANCK_J_S = 6.62607015e-34  # exact (SI 2019); CODATA 2018, Tiesinga et al., Rev. Mod. Phys. 93, 025010 (2021)
-LIGHT_SPEED_M_S = 299792458.0  # exact (SI definition)
-
-
-
-class Refused(Exception):
-    """A request that is valid but not allowed now; the message says why and what to do."""
+# names that lived here before the split, importable from here as before
+__all__ = [
+    "LIGHT_SPEED_M_S", "PLANCK_J_S", "RUN_STATES", "Refused", "Service", "ServicePublisher", "_RunActivity", "serve",
+]
 
 
 class ServicePublisher(Publisher):
@@ -96,20 +91,10 @@ class ServicePublisher(Publisher):
         return super().publish(topic, meta, array)
 
 
-@dataclass
-class _RunActivity:
-    thread: threading.Thread
-    control: RunControl
-    plan: RunPlan
-    t_start: float
-    progress: dict
-    summary: RunSummary | None = None
-    last: Progress | None = None  # the sequencer's latest progress
-    error: str = ""
+class Service(ServiceActivities, ServiceStatus):
+    """The daemon. ``Service(cfg).serve_forever()``; ``request_shutdown()`` from another thread ends it.
 
-
-class Service:
-    """The daemon. ``Service(cfg).serve_forever()``; ``request_shutdown()`` from another thread ends it."""
+    The activity requests and threads are its mixin ``service_activities``, the status ``service_status``."""
 
     def __init__(self, cfg: BenchConfig, *, control_address: str | None = None, publish_address: str | None = None,
                  log: Callable[[str], None] = print):
@@ -297,235 +282,6 @@ class Service:
         if not self.interlock_closed:
             raise Refused(f"cannot {what}: the interlock reads OPEN; close the enclosure/door interlock first")
 
-    def _do_start(self, req: C.StartRequest) -> dict:
-        self._require_idle("start a run")
-        self._require_safe_to_open("start a run")
-        cfg = self.cfg
-        from .foreground import RunRequest, check_output_folder, output_path_for
-
-        if req.output_path:
-            out = Path(req.output_path).expanduser()
-            if out.suffix not in (".h5", ".hdf5"):
-                raise Refused(f"output_path {out} must end in .h5 (an HDF5 run file)")
-        else:
-            out = output_path_for(cfg, RunRequest(output_dir=req.output_dir, name=req.name))
-        if out.exists():
-            raise Refused(f"{out} already exists; give another output_path (run files are never overwritten)")
-        try:
-            check_output_folder(out)
-        except OSError as exc:
-            raise Refused(str(exc)) from None
-        plan = RunPlan(passes=req.passes or cfg.run.passes,
-                       dark_frames=cfg.run.dark_frames if req.dark_frames is None else req.dark_frames,
-                       exposure_s=req.exposure_s or self.exposure_s, output_path=out, interval_s=req.interval_s)
-        from .disk import DiskSpaceError
-        from .session import plan_run_disk
-
-        try:
-            plan_run_disk(self.bench, plan)  # refuse up front a run the disk cannot hold; nothing is written
-        except DiskSpaceError as exc:
-            raise Refused(str(exc)) from None
-        self._check_watchdog(plan.exposure_s)
-        if self.recon is not None and not self.recon.worker_alive():
-            # the local reconstruction worker died since the last run: start a fresh one
-            self.log("reconstruction worker had exited; starting a new one")
-            self.recon.close()
-            from .session import make_recon_link
-
-            self.recon = make_recon_link(self.bench, self.ctx)
-        control = RunControl()
-        control.resume_hint = "'maskrun resume' (the service's 'resume' request)"
-        k = self.bench.masks.shape[0]
-        progress = {"state": "preparing", "pass_index": -1, "mask_index": -1, "frames_done": 0,
-                    "frames_total": plan.passes * k, "photons_last": 0.0, "saturated_last": 0.0, "photons_total": 0.0,
-                    "true_error": None, "error_estimate": None, "residual": None, "message": "",
-                    "fps": 0.0, "eta_s": None, "elapsed_s": 0.0}
-        act = _RunActivity(threading.Thread(target=self._run_thread, name="run", daemon=True), control, plan,
-                           time.monotonic(), progress)
-        self.pub.alerts.clear()  # a new run: the last run's alerts are in its outcome (last_run.warnings)
-        self._run = act
-        self.state = "preparing"
-        self.runs_started += 1
-        act.thread.start()
-        return {"output_path": str(out), "passes": plan.passes, "dark_frames": plan.dark_frames,
-                "exposure_s": plan.exposure_s, "frames_total": plan.passes * k}
-
-    def _run_thread(self) -> None:
-        act = self._run
-        name = act.plan.output_path.stem
-        first_frame_t: list[float] = []
-
-        def observer(p: Progress) -> None:
-            now = time.monotonic()
-            pr = act.progress
-            if p.frames_done and not first_frame_t:
-                first_frame_t[:] = [now, p.frames_done]
-            fps = 0.0
-            if first_frame_t and p.frames_done > first_frame_t[1]:
-                fps = (p.frames_done - first_frame_t[1]) / max(now - first_frame_t[0], 1e-9)
-            remaining = p.frames_total - p.frames_done
-            pr.update(state=p.state.value, pass_index=p.pass_index, mask_index=p.mask_index,
-                      frames_done=p.frames_done, frames_total=p.frames_total, photons_last=p.photons_last,
-                      saturated_last=p.saturated_last, photons_total=p.photons_total,
-                      true_error=p.estimate_true_error, error_estimate=p.estimate_error_estimate,
-                      residual=p.estimate_residual, message=p.message, fps=fps,
-                      eta_s=(remaining / fps) if fps > 0 else None, elapsed_s=now - act.t_start)
-            act.last = dataclasses.replace(p)
-            if p.state.value in RUN_STATES:
-                self.state = p.state.value
-
-        from .session import execute_run
-
-        try:
-            act.summary = execute_run(self.bench, act.plan, self.ack, publisher=self.pub, zmq_context=self.ctx,
-                                      control=act.control, observer=observer, run_name=name, recon=self.recon)
-        except Exception as exc:
-            act.error = f"{type(exc).__name__}: {exc}"
-            self.log(f"run failed: {traceback.format_exc()}")
-            self.pub.publish("alert", {"kind": "run_failed", "level": "error", "message": act.error})
-        finally:
-            s = act.summary
-            photons = s.photons_total if s else act.progress["photons_total"]
-            self.photons_lifetime += photons
-            try:
-                told = state_from_file(act.plan.output_path).to_dict()  # the file's account (run_state)
-            except Exception as exc:  # no file (refused before creation) or unreadable
-                told = {"outcome": f"Fault: {act.error or exc}"}
-            self.pub.alerts.clear()  # the run's alerts are in its outcome now
-            self.last_run = {
-                **told,
-                "state": s.state.value if s else "fault",
-                "message": (s.message if s else act.error),
-                "output_path": str(act.plan.output_path),
-                "frames": s.frames if s else act.progress["frames_done"],
-                "darks": s.darks if s else 0,
-                "passes_complete": s.passes_complete if s else 0,
-                "estimates": s.estimates if s else 0,
-                "photons_total": photons,
-                "final_true_error": s.final_true_error if s else None,
-                "final_error_estimate": s.final_error_estimate if s else None,
-                "wall_s": s.wall_s if s else time.monotonic() - act.t_start,
-            }
-            self.state = "idle"
-
-    def _do_pause(self, req: C.PauseRequest) -> dict:
-        if self.state not in ("preparing", "darks", "acquiring", "finishing"):
-            raise Refused(f"nothing to pause: the service is {self.state} (pause applies to a running run)")
-        self._run.control.request_pause(req.reason)
-        return {"pausing": True, "note": "the run pauses before its next frame; the shutter closes while paused"}
-
-    def _do_resume(self, req: C.ResumeRequest) -> dict:
-        if self.state != "paused":
-            if self._run is not None and self._run.control.pause_requested and self.state in RUN_STATES:
-                self._run.control.resume()  # a pause not yet reached: cancel it
-                return {"resumed": True}
-            raise Refused(f"nothing to resume: the service is {self.state} (resume applies to a paused run)")
-        if self.bench.optics is not None and not self.bench.optics.interlock_closed:
-            raise Refused("cannot resume: the interlock reads OPEN; close the enclosure/door interlock first")
-        self._run.control.resume()
-        return {"resumed": True}
-
-    def _do_stop(self, req: C.StopRequest) -> dict:
-        if self.state in RUN_STATES:
-            self._run.control.request_stop(req.reason)
-            return {"stopping": "run", "output_path": str(self._run.plan.output_path)}
-        if self.state == "align":
-            self._align.stop(req.reason, timeout_s=0)  # the loop ends after its current frame
-            return {"stopping": "align"}
-        raise Refused(f"nothing to stop: the service is {self.state}")
-
-    def _do_set_exposure(self, req: C.SetExposureRequest) -> dict:
-        if self.state in RUN_STATES:
-            raise Refused(f"the exposure is fixed for a run (the service is {self.state}); "
-                          "give exposure_s with 'start', or stop the run first")
-        if self.state == "taking_darks":
-            raise Refused("cannot change the exposure while dark frames are being taken; wait for them to finish")
-        self._check_watchdog(req.exposure_s)
-        self.exposure_s = req.exposure_s
-        if self.state == "align":
-            self._align.set_exposure(req.exposure_s)
-        return {"exposure_s": self.exposure_s}
-
-    def _check_watchdog(self, exposure_s: float) -> None:
-        """Refuse an exposure the camera cannot take (its own limits, bench.check_exposure) or that the
-        safety box's watchdog would cut short (bench.check_watchdog)."""
-        from .bench import check_exposure, check_watchdog
-
-        try:
-            check_exposure(self.bench, exposure_s, "exposure_s")
-            check_watchdog(self.bench, exposure_s)
-        except ConfigError as exc:
-            raise Refused(str(exc)) from None
-
-    def _do_take_darks(self, req: C.TakeDarksRequest) -> dict:
-        self._require_idle("take dark frames")
-        self.state = "taking_darks"
-        self._darks_thread = threading.Thread(target=self._darks, args=(req.count,), name="darks", daemon=True)
-        self._darks_thread.start()
-        return {"count": req.count, "exposure_s": self.exposure_s,
-                "note": "the shutter stays closed; 'status' shows the dark level when done"}
-
-    def _darks(self, count: int) -> None:
-        bench = self.bench
-        cam = bench.camera
-        try:
-            bench.safety.close_shutter()
-            cam.exposure_s = self.exposure_s
-            acc = np.zeros(bench.grid_shape, dtype=np.float64)
-            last_id = None
-            taken = 0
-            while taken < count:
-                cam.trigger()
-                frame = cam.grab(self.exposure_s + self.cfg.camera.grab_timeout_s)
-                if last_id is not None and frame.frame_id <= last_id:
-                    continue  # stale: take another
-                last_id = frame.frame_id
-                acc += frame.pixels
-                taken += 1
-                self.pub.publish("frame", {"mode": "dark", "index": taken - 1, "frame_id": frame.frame_id,
-                                           "exposure_s": frame.exposure_s}, frame.pixels)
-            mean = (acc / count).astype(np.float32)
-            self.dark_dn = mean
-            self.darks_info = {"count": count, "exposure_s": self.exposure_s, "mean_dn": float(mean.mean()),
-                               "std_dn": float(mean.std()), "t_s": time.time(), "error": ""}
-            self.pub.publish("event", {"kind": "darks", "level": "info",
-                                       "message": f"{count} dark frames, mean level {float(mean.mean()):.1f} DN"})
-        except Exception as exc:
-            self.darks_info = {"count": 0, "error": f"{type(exc).__name__}: {exc}", "t_s": time.time()}
-            self.pub.publish("alert", {"kind": "darks_failed", "level": "error", "message": self.darks_info["error"]})
-        finally:
-            try:
-                bench.safety.close_shutter()
-            finally:
-                self.state = "idle"
-
-    def _do_align_start(self, req: C.AlignStartRequest) -> dict:
-        self._require_idle("start align mode")
-        self._require_safe_to_open("start align mode")
-        if req.exposure_s is not None:
-            self._check_watchdog(req.exposure_s)
-            self.exposure_s = req.exposure_s
-        k = self.bench.masks.shape[0]
-        if req.mask is not None and req.mask >= k:
-            raise Refused(f"mask {req.mask} does not exist: masks are numbered 0..{k - 1}")
-        settings = AlignSettings(mask=req.mask, exposure_s=self.exposure_s, iterations=req.iterations)
-
-        def on_end(reason: str, failed: bool) -> None:
-            self.state = "idle"
-
-        self._align = AlignLoop(self.bench, self.pub, settings, self.dark_dn, self.cfg.checks.saturation_level,
-                                on_end=on_end)
-        self.state = "align"
-        self._align.start()
-        return {"mask": req.mask, "cycling": req.mask is None, "exposure_s": self.exposure_s,
-                "reconstruction": "follow mode, window 1" if req.mask is None else
-                "none (one mask does not determine the phase; omit 'mask' to cycle)"}
-
-    def _do_align_stop(self, req: C.AlignStopRequest) -> dict:
-        if self.state != "align":
-            raise Refused(f"align mode is not on (the service is {self.state})")
-        self._align.stop("align mode stopped by request", timeout_s=0)
-        return {"stopping": "align"}
 
     def _do_shutdown(self, req: C.ShutdownRequest) -> dict:
         was = self.state
@@ -590,74 +346,6 @@ class Service:
             self._align.stop(reason, timeout_s=10 if wait else 0)
         if self._darks_thread is not None and wait:
             self._darks_thread.join(30)
-
-    def _photon_energy_j(self) -> float:
-        # E = h c / lambda (Planck-Einstein relation)
-        return PLANCK_J_S * LIGHT_SPEED_M_S / self.cfg.laser.wavelength_m
-
-    def status(self) -> dict:
-        """Everything a client shows: state, safety, run progress, align figures, darks, alerts."""
-        state = self.state
-        run = None
-        photons_now = 0.0
-        exposure_now = self.exposure_s
-        if self._run is not None and state in RUN_STATES:
-            act = self._run
-            pr = act.progress
-            if act.last is not None:
-                run = live_state(act.last, act.plan, int(self.bench.masks.shape[0]), fps=pr.get("fps", 0.0),
-                                 eta_s=pr.get("eta_s"), elapsed_s=time.monotonic() - act.t_start,
-                                 warnings=self.pub.recent_alerts if self.pub is not None else []).to_dict()
-            else:
-                run = {**pr, "output_path": str(act.plan.output_path), "passes": act.plan.passes,
-                       "exposure_s": act.plan.exposure_s, "dark_frames": act.plan.dark_frames}
-            exposure_now = run.get("exposure_s") or act.plan.exposure_s
-            photons_now = run["photons_total"]
-        align = None
-        # every safety field is what the box said, with its age; too old or failed: unknown (never inferred)
-        max_age = max(5.0, 3 * self.cfg.service.status_interval_s)
-        readings = self.safety_readings.snapshot(max_age)
-        interlock, shutter = readings["interlock_closed"], readings["shutter_open"]
-        safety_source = (f"read from the safety box (by the {'run' if run is not None else 'align loop' if state == 'align' else 'service'}"
-                         f"); a reading older than {max_age:g} s is shown as unknown")
-        if self._align is not None and state == "align":
-            align = self._align.figures.to_dict()
-        elif self._align is not None and self._align.error:
-            align = {"message": self._align.error}
-        photons = self.photons_lifetime + photons_now
-        ack = None
-        if self._ack_valid():
-            ack = {"who": self.ack.who, "how": self.ack.how, "when_utc": self.ack.when_utc}
-        return {
-            "state": state,
-            "config": self.cfg.source_path,
-            "uptime_s": time.time() - self._t_started,
-            "control_address": self.control_address,
-            "publish_address": self.publish_address,
-            "curve": self.keys is not None,
-            "stream_curve": bool(self.pub is not None and self.pub.authenticated),
-            "safety": {"acknowledged": ack is not None, "acknowledgement": ack, "interlock_closed": interlock,
-                       "shutter_open": shutter, "source": safety_source, "laser_class": self.cfg.laser.laser_class,
-                       "wavelength_m": self.cfg.laser.wavelength_m, **readings},
-            "exposure_s": exposure_now,  # the run's (as used) while a run goes, else the next run's
-            "exposure_next_run_s": self.exposure_s,
-            "masks": int(self.bench.masks.shape[0]) if self.bench is not None else 0,
-            "grid_shape": list(self.cfg.grid.shape),
-            "max_dn": self.bench.camera.max_dn if self.bench is not None else 0,
-            "saturation_level": self.cfg.checks.saturation_level,
-            "run": run,
-            "last_run": self.last_run or None,
-            "align": align,
-            "darks": self.darks_info or None,
-            "dose": {"photons_total": photons, "energy_j": photons * self._photon_energy_j(),
-                     "note": "incident photons counted at the camera since the service started (runs only)"},
-            "recent_alerts": self.pub.recent_alerts[-10:] if self.pub is not None else [],
-            "stream_sent": dict(self.pub.sent) if self.pub is not None else {},
-            "runs_started": self.runs_started,
-            "reconstruction": None if self.recon is None else {
-                "worker_pid": self.recon.process.pid if self.recon.process is not None else None,
-                "worker_alive": self.recon.worker_alive()},
-        }
 
 
 def serve(cfg: BenchConfig, *, control_address: str | None = None, publish_address: str | None = None,

@@ -68,3 +68,70 @@ def test_the_deep_prior_imports_torch_only_when_called():
     top = {a.name.split(".")[0] for n in tree.body if isinstance(n, _ast.Import) for a in n.names}
     top |= {n.module.split(".")[0] for n in tree.body if isinstance(n, _ast.ImportFrom) and n.level == 0 and n.module}
     assert "torch" not in top
+
+
+def _daemon_imports(path: Path, modules: set[str]) -> set[str]:
+    """The daemon modules one daemon module imports, at any depth in the file (imports inside functions
+    count: a lazy import still ties the two modules together). Relative (``from .x import``, ``from . import
+    x``) and absolute (``maskrun.daemon.x``) forms."""
+    found = set()
+    for node in ast.walk(ast.parse(path.read_text(), str(path))):
+        if isinstance(node, ast.Import):
+            for a in node.names:
+                parts = a.name.split(".")
+                if parts[:2] == ["maskrun", "daemon"] and len(parts) > 2:
+                    found.add(parts[2])
+        elif isinstance(node, ast.ImportFrom):
+            if node.level == 1:
+                base = node.module.split(".")[0] if node.module else None
+            elif node.level == 0 and node.module and node.module.split(".")[:2] == ["maskrun", "daemon"]:
+                parts = node.module.split(".")
+                base = parts[2] if len(parts) > 2 else None
+            else:
+                continue
+            if base is not None:
+                found.add(base)
+            else:  # from . import x, y / from maskrun.daemon import x, y
+                found |= {a.name for a in node.names}
+    return (found & modules) - {path.stem}
+
+
+def _cycle(graph: dict[str, set[str]]) -> list[str]:
+    """One import cycle of the graph as [a, b, ..., a], or [] when there is none (depth-first search)."""
+    state: dict[str, int] = {}  # 1 on the current path, 2 done
+    path: list[str] = []
+
+    def visit(node: str) -> list[str]:
+        state[node] = 1
+        path.append(node)
+        for nxt in sorted(graph.get(node, ())):
+            if state.get(nxt) == 1:
+                return path[path.index(nxt):] + [nxt]
+            if nxt not in state:
+                found = visit(nxt)
+                if found:
+                    return found
+        path.pop()
+        state[node] = 2
+        return []
+
+    for node in sorted(graph):
+        if node not in state:
+            found = visit(node)
+            if found:
+                return found
+    return []
+
+
+def test_no_two_daemon_modules_import_each_other():
+    # a circle of imports (direct, or through other modules) between daemon/*.py, lazy imports included
+    paths = sorted((ROOT / "daemon").glob("*.py"))
+    modules = {p.stem for p in paths}
+    graph = {p.stem: _daemon_imports(p, modules) for p in paths}
+    assert not _cycle(graph), f"daemon modules import each other: {' -> '.join(_cycle(graph))}"
+
+
+def test_the_cycle_check_finds_a_cycle():
+    # self-check on made-up module names, so the test above can fail
+    assert _cycle({"a": {"b"}, "b": {"c"}, "c": {"a"}}) == ["a", "b", "c", "a"]
+    assert _cycle({"a": {"b"}, "b": {"c"}, "c": set()}) == []
