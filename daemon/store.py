@@ -1,6 +1,9 @@
 """The run file: one HDF5 file per run, valid at every moment.
 
-Layout (format ``maskrun-run`` version 1; documented in docs/run-file.md):
+Layout (format ``maskrun-run`` version 2; documented in docs/run-file.md). Version 2 is version 1
+plus the NeXus groups made by ``daemon.nexus`` (NXdata default plots ``/entry/data`` and
+``/entry/reconstruction``, ``/entry/instrument`` with NXsource/NXdetector/modulator, NXsample, NXuser,
+start_time/end_time, units), which hold hard links to the datasets below, never copies:
 
     /entry                      group, NX_class=NXentry; attributes below
     /entry/frames               (N, H, W) camera counts as delivered, one frame per chunk
