@@ -106,6 +106,9 @@ def summary_table(rf, path: Path) -> Table:
     faults = [e for e in ev if e["level"] in ("warning", "error")]
     t.add_row("events", f"{len(ev)} ({len(faults)} warnings/errors)")
     t.add_row("file size", f"{path.stat().st_size / 1e6:.2f} MB")
+    version = rf.format_version
+    t.add_row("format", f"maskrun-run version {version}" + (
+        f" (NeXus; default plot /entry/{rf.entry.attrs.get('default', 'data')})" if rf.is_nexus else " (before NeXus)"))
     return t
 
 

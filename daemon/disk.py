@@ -32,7 +32,7 @@ from .store import ESTIMATE_INFO_DTYPE, EVENT_DTYPE, FRAME_INFO_DTYPE, RunStore,
 MB = 1024 * 1024
 # HDF5 metadata (object headers, chunk indexes) per chunked row, generously; measured ~100-200 bytes
 _ROW_OVERHEAD_BYTES = 256
-_FILE_OVERHEAD_BYTES = 64 * 1024
+_FILE_OVERHEAD_BYTES = 96 * 1024  # + ~25 kB of NeXus groups (format 2)
 
 
 class DiskSpaceError(StoreError):
@@ -64,6 +64,7 @@ def expected_run_bytes(*, grid_shape, mask_count: int, passes: int, dark_frames:
     size = (frames + dark_frames) * frame_row
     size += est * (px * 8 + ESTIMATE_INFO_DTYPE.itemsize + 2 * _ROW_OVERHEAD_BYTES)
     size += mask_count * px * 8 + (px * 16 if truth else 0) + (px * 4 if flat_field else 0)
+    size += px * 8 if estimates else 0  # /entry/reconstruction: the latest amplitude and phase (float32 each)
     size += int(math.ceil((frames + dark_frames) * events_per_frame + 20)) * EVENT_DTYPE.itemsize
     size += _FILE_OVERHEAD_BYTES
     size += RunStore.SPACE_RESERVE_BYTES + 4 * px * frame_itemsize  # the emergency reserve beside the file

@@ -14,7 +14,7 @@ from pathlib import Path
 import h5py
 import numpy as np
 
-from .store import FORMAT_NAME, StoreError
+from .store import FORMAT_NAME, READABLE_VERSIONS, StoreError
 
 
 @dataclass
@@ -39,11 +39,48 @@ class RunFile:
             self._f.close()
             raise StoreError(f"{self.path}: not a maskrun run file (no 'format = {FORMAT_NAME}' attribute)")
         self.entry = self._f["entry"]
+        version = self.format_version
+        if version not in READABLE_VERSIONS:
+            self._f.close()
+            raise StoreError(f"{self.path}: run file format version {version}; this maskrun reads versions "
+                             f"{', '.join(map(str, READABLE_VERSIONS))} (a newer maskrun wrote it: update maskrun)")
+
+    @property
+    def format_version(self) -> int:
+        """1: the plain layout; 2: the same datasets plus the NeXus groups (docs/run-file.md)."""
+        raw = self._f.attrs.get("format_version", self.entry.attrs.get("format_version", 1))
+        try:
+            return int(raw)
+        except (TypeError, ValueError):
+            return -1
+
+    @property
+    def is_nexus(self) -> bool:
+        return self.format_version >= 2
+
+    def end_time(self) -> str | None:
+        """/entry/end_time (version 2: the time of the last flush), or None for version 1 files."""
+        if "end_time" not in self.entry:
+            return None
+        raw = self.entry["end_time"][()]
+        return raw.decode() if isinstance(raw, bytes) else str(raw)
+
+    def latest_reconstruction(self) -> tuple[np.ndarray, np.ndarray] | None:
+        """(amplitude, phase) of the latest estimate: /entry/reconstruction in version 2 files, else computed
+        from the last row of /entry/estimates (version 1); None without an estimate."""
+        rec = self.entry.get("reconstruction")
+        if rec is not None and int(rec["estimate_index"][()]) >= 0:
+            return rec["amplitude"][...], rec["phase"][...]
+        if self.estimate_count:
+            est = self.entry["estimates"][self.estimate_count - 1]
+            return np.abs(est).astype(np.float32), np.angle(est).astype(np.float32)
+        return None
 
     def refresh(self) -> None:
         """See rows the writer appended since opening."""
         for name in ("frames", "frame_info", "darks", "dark_info", "estimates", "estimate_info", "events",
-                     "refused", "refused_info"):
+                     "refused", "refused_info", "end_time", "reconstruction/amplitude", "reconstruction/phase",
+                     "reconstruction/estimate_index"):
             if name in self.entry:
                 self.entry[name].refresh()
 

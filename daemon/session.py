@@ -51,7 +51,38 @@ def run_header(bench: Bench, ack: Acknowledgement, run_name: str, plan: RunPlan 
         truth=bench.truth,
         extra_attrs=extra,
         flat_field=getattr(bench, "flat_field", None),
+        **nexus_description(bench, ack),
     )
+
+
+def nexus_description(bench: Bench, ack: Acknowledgement) -> dict:
+    """What the NeXus groups of the run file say about source, detector, modulator and sample
+    (RunHeader fields). A value maskrun does not know is left out (the file records it as unknown)."""
+    cfg = bench.config
+    cam = bench.camera
+    try:
+        gain = cam.gain
+    except Exception:
+        gain = None
+    pixel = getattr(cam, "pixel_size_m", None)  # a driver that knows its pixel pitch may say it
+    mod = bench.modulator
+    try:
+        settle = float(mod.settle_s)
+    except Exception:
+        settle = None
+    sim = cfg.simulation
+    sample = ({"name": sim.sample, "description": f"simulated bench: [simulation] sample = {sim.sample!r}"}
+              if sim is not None else {})
+    return {
+        "live_reconstruction": bool(cfg.reconstruction.enabled),
+        "source": {"description": cfg.laser.description, "power_w": ack.power_w, "laser_class": ack.laser_class},
+        "detector": {"driver": cfg.camera.driver, "exposure_s": cfg.camera.exposure_s,
+                     "gain_setting": None if gain is None else f"{float(gain):g}", "pixel_size_m": pixel},
+        "modulator": {"driver": cfg.modulator.driver, "settings": dict(cfg.modulator.settings),
+                      "settle_s": settle, "mask_family": cfg.masks.family},
+        "sample": sample,
+        "operator": ack.who,
+    }
 
 
 def masks_provenance(bench: Bench) -> dict:

@@ -1,6 +1,9 @@
 """The run file: one HDF5 file per run, valid at every moment.
 
-Layout (format ``maskrun-run`` version 1; documented in docs/run-file.md):
+Layout (format ``maskrun-run`` version 2; documented in docs/run-file.md). Version 2 is version 1
+plus the NeXus groups made by ``daemon.nexus`` (NXdata default plots ``/entry/data`` and
+``/entry/reconstruction``, ``/entry/instrument`` with NXsource/NXdetector/modulator, NXsample, NXuser,
+start_time/end_time, units), which hold hard links to the datasets below, never copies:
 
     /entry                      group, NX_class=NXentry; attributes below
     /entry/frames               (N, H, W) camera counts as delivered, one frame per chunk
@@ -58,8 +61,11 @@ from pathlib import Path
 import h5py
 import numpy as np
 
+from .nexus import iso_utc, write_latest, write_nexus
+
 FORMAT_NAME = "maskrun-run"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2  # 2: NeXus (NXdata default plots, NXinstrument, NXsample, start/end time, units); 1: no NeXus groups
+READABLE_VERSIONS = (1, 2)  # every version this code reads (a version 1 file keeps its layout when resumed)
 
 # Per-frame flag bits (frame_info['flags']).
 FLAG_SATURATED = 1 << 0  # saturated fraction above the limit
@@ -162,6 +168,13 @@ class RunHeader:
     truth: np.ndarray | None = None
     extra_attrs: dict | None = None
     flat_field: np.ndarray | None = None  # (H, W) per-pixel response, mean 1; stored as /entry/flat_field
+    # --- NeXus description (version 2); None / missing keys are recorded as unknown, never guessed ---------
+    live_reconstruction: bool = True  # estimates are expected: /entry/reconstruction is made and is the default plot
+    source: dict | None = None  # description, power_w, laser_class (the class label of the acknowledgement)
+    detector: dict | None = None  # driver, exposure_s, gain_setting, pixel_size_m ((y, x) or one number)
+    modulator: dict | None = None  # driver, settings (dict), settle_s, mask_family
+    sample: dict | None = None  # name, description
+    operator: str = ""  # who ran the bench (the safety acknowledgement's 'who')
 
 
 def _encode(text: str, nbytes: int) -> bytes:
@@ -194,6 +207,9 @@ class RunStore:
         self._events = e["events"]
         self._refused = e.get("refused")  # absent in files written before it was added
         self._refused_info = e.get("refused_info")
+        self._recon = e.get("reconstruction")  # the latest estimate as NXdata (version 2 files only)
+        self._end_time = e.get("end_time") if "end_time" in e and e["end_time"].dtype.kind == "S" else None
+        self._end_stamp = None
         self.refused_count = (min(self._refused.shape[0], self._refused_info.shape[0])
                               if self._refused is not None else 0)
         self.frame_count = min(self._frames.shape[0], self._frame_info.shape[0])
@@ -286,7 +302,8 @@ class RunStore:
         e.attrs["format"] = FORMAT_NAME
         e.attrs["format_version"] = FORMAT_VERSION
         e.attrs["run_name"] = h.run_name
-        e.attrs["created_utc"] = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
+        created = iso_utc()
+        e.attrs["created_utc"] = created
         e.attrs["config_toml"] = h.config_toml
         e.attrs["safety_acknowledgement"] = json.dumps(h.safety_acknowledgement)
         e.attrs["grid_shape"] = np.asarray(h.grid_shape, dtype=np.int64)
@@ -317,6 +334,7 @@ class RunStore:
             if flat.shape != (rows, cols):
                 raise StoreError(f"flat field shape {flat.shape} does not match the frames {(rows, cols)}")
             e.create_dataset("flat_field", data=flat)
+        write_nexus(f, e, h, created)  # NeXus groups, links and units (version 2): all before SWMR mode
 
     @classmethod
     def reopen(cls, path: str | Path, text_log: bool = True) -> RunStore:
@@ -412,8 +430,15 @@ class RunStore:
                 if name in info.dtype.names:
                     old[name] = info[name]
             info = old
-        i = self._append(self._estimates, self._estimate_info, self.estimate_count, estimate.astype(np.complex64), info)
-        self.estimate_count += 1
+        with self.lock:
+            i = self._append(self._estimates, self._estimate_info, self.estimate_count,
+                             estimate.astype(np.complex64), info)
+            self.estimate_count += 1
+            if self._recon is not None:
+                try:
+                    write_latest(self._recon, estimate, i, info)
+                except (OSError, RuntimeError) as exc:
+                    raise self._write_error(exc) from None
         return i
 
     def log(self, kind: str, message: str, level: str = "info", t_s: float | None = None) -> None:
@@ -444,6 +469,11 @@ class RunStore:
     def _flush_locked(self) -> None:
         rows = self.frame_count
         try:
+            if self._end_time is not None:  # /entry/end_time: the time of the last flush (data only: SWMR allows it)
+                stamp = iso_utc()
+                if stamp != self._end_stamp:
+                    self._end_time[()] = stamp.encode()
+                    self._end_stamp = stamp
             self._f.flush()
             self._flushed_frames = rows
         except (OSError, RuntimeError) as exc:
@@ -474,7 +504,7 @@ class RunStore:
         sys.unraisablehook = _quiet_after_write_error
         try:
             for name in ("_frames", "_frame_info", "_darks", "_dark_info", "_estimates", "_estimate_info", "_events",
-                         "_refused", "_refused_info"):
+                         "_refused", "_refused_info", "_recon", "_end_time"):
                 setattr(self, name, None)
             gc.collect()
             try:
