@@ -52,27 +52,50 @@ class SequencerFrames:
             ledger.set_run_photons(ledger.photons_on_sample(self.plan.dose_photons_before))
         return ledger
 
-    def _arm(self, k: int, set_index: int) -> None:
+    def _arm(self, k: int, set_index: int, early: bool = False) -> bool:
         """Show mask k and start its exposure now, so it runs while the previous frame is stored and
         published (the pipelined loop). The same checks as before any exposure come first (disk, dose,
         interlock and shutter); a stop, pause or saturation stop asked for meanwhile arms nothing.
-        A trigger that fails leaves the frame to be taken the ordinary way (with its retries)."""
+        A trigger that fails leaves the frame to be taken the ordinary way (with its retries).
+
+        ``early``: the previous frame is not stored yet, so nothing here may wait, pause or raise: a
+        disk near its reserve, a dose near its limit, an open interlock, a closed shutter or a device
+        that does not answer at once arms nothing (returns False), and the ordinary arming after the
+        frame is stored meets the same condition with its usual handling. Returns True when armed."""
         if self._stop_after_frame or self.control.stop_requested or self.control.pause_requested:
-            return
+            return False
         self._frame_flags = 0
-        self.disk.check()
-        self._check_dose_before()
-        self._ensure_light()
         mod = self.bench.modulator
-        self._call("modulator", lambda: mod.show(k), f"showing mask {k + 1}")
+        if early:
+            safety = self.bench.safety
+            try:
+                self.disk.check()
+                self._check_dose_before()
+                if not (safety.interlock_closed() and safety.shutter_is_open()):
+                    return False
+                mod.show(k)
+            except (DeviceTimeout, DeviceFault, DeviceDisconnected) as exc:  # logged as the retries log it
+                kind = ("no_ack" if isinstance(exc, DeviceTimeout) else
+                        "bad_reply" if isinstance(exc, DeviceFault) else "disconnect")
+                self._fault(f"modulator_{kind}", f"showing mask {k + 1}: {exc.detail}; tried again once the "
+                            "frame before it is stored")
+                return False
+            except Exception:  # disk near its reserve, dose near its limit, ...: met again on the ordinary path
+                return False
+        else:
+            self.disk.check()
+            self._check_dose_before()
+            self._ensure_light()
+            self._call("modulator", lambda: mod.show(k), f"showing mask {k + 1}")
         if mod.settle_s > 0:
             time.sleep(mod.settle_s)
         t = time.time()
         try:
             self.bench.camera.trigger()
         except DeviceError:
-            return
+            return False
         self._armed, self._armed_t, self._armed_flags = (set_index, k), t, self._frame_flags
+        return True
 
     # --- frames -----------------------------------------------------------------
     def _grab(self, timeout_s: float, p: int = -1, k: int = -1, set_index: int = -1, triggered_at: float | None = None):
@@ -211,8 +234,31 @@ class SequencerFrames:
         except DoseLimitExceeded as exc:
             raise DoseLimitStop(str(exc)) from None
 
-    def _take_frame(self, p: int, k: int, set_index: int):
-        """One good frame of mask k: returns (frame, check, flags, attempts, t_request). Stores refused attempts."""
+    def _arm_next(self, p: int, k: int, set_index: int, early: bool = False) -> bool:
+        """Arm the exposure that follows mask k of pass p: the next mask of this set, or the first mask of
+        the next set (no interval between sets, passes left). Nothing after the last frame (returns True:
+        nothing is left to arm). Returns whether the arming is done (see `_arm`)."""
+        if k + 1 < self.k:
+            return self._arm(k + 1, set_index, early)
+        if not self.plan.interval_s and p + 1 < self.plan.passes:
+            return self._arm(0, set_index + 1, early)
+        return True
+
+    def _may_arm_before_check(self) -> bool:
+        """Whether the next exposure may start before this frame is checked: only when no check result
+        could ask for this frame to be retaken or the run to stop (``saturation_action = 'flag'``), and
+        the dose limit leaves room for two more frames like the last one (this frame, not yet counted,
+        and the next; with a limit set, the run's first frame is always checked first)."""
+        if self.bench.config.checks.saturation_action != "flag":
+            return False
+        if self.dose is None:
+            return True
+        return self._last_photons > 0 and not self.dose.would_exceed(2.0 * self._last_photons)
+
+    def _take_frame(self, p: int, k: int, set_index: int, arm_early: bool = False):
+        """One good frame of mask k: returns (frame, check, flags, attempts, t_request, armed_next).
+        Stores refused attempts. ``arm_early``: once the frame is in and the shutter was open, start the
+        next exposure before checking this frame, when `_may_arm_before_check` allows (armed_next True)."""
         cam = self.bench.camera
         mod = self.bench.modulator
         action = self.bench.config.checks.saturation_action
@@ -242,6 +288,8 @@ class SequencerFrames:
                 self._fault("shutter_closed", f"pass {p + 1} mask {k + 1}: the shutter was found closed after the exposure "
                             "(interlock?): frame kept in /entry/refused and retaken")
                 continue
+            # the frame check cannot change what comes next: the next exposure starts now
+            armed_next = arm_early and self._may_arm_before_check() and self._arm_next(p, k, set_index, early=True)
             chk = check_frame(frame.pixels, self.dark_dn, self.bench.response, self.limits, self.flat)
             flags |= chk.flags
             if chk.saturated_fraction > self.limits.max_saturated_fraction and action != "flag":
@@ -267,7 +315,7 @@ class SequencerFrames:
                         shortenings += 1
                         self._frame_flags |= FLAG_EXPOSURE_SHORTENED | FLAG_RETAKEN
                         continue
-            return frame, chk, flags, attempts, t_req
+            return frame, chk, flags, attempts, t_req, armed_next
 
     def _take_pass(self, p: int) -> None:
         self._check_pause()
@@ -277,7 +325,7 @@ class SequencerFrames:
         set_index = self.set_index
         self.set_index += 1
         for k in range(self.k):
-            frame, chk, flags, attempts, t_req = self._take_frame(p, k, set_index)
+            frame, chk, flags, attempts, t_req, armed_next = self._take_frame(p, k, set_index, arm_early=True)
             last = k == self.k - 1
             info = frame_info_record(
                 pass_index=p, set_index=set_index, mask_index=k, frame_id=frame.frame_id, t_request_s=t_req,
@@ -299,10 +347,8 @@ class SequencerFrames:
                 self.saturated += 1
             self._account_dose(chk.photons)
             # the next exposure starts now (its mask shown first), while this frame is published
-            if not last:
-                self._arm(k + 1, set_index)
-            elif not self.plan.interval_s and p + 1 < self.plan.passes:
-                self._arm(0, self.set_index)
+            if not armed_next:
+                self._arm_next(p, k, set_index)
             # frame set buffer: dark-subtracted, flat-corrected electrons, zero frequency moved to [0, 0]
             # (one pass with the shift folded in)
             electrons_shifted(frame.pixels, self.dark_dn, resp.gain_dn_per_e, self._flat_shifted, self._set_buffer[k])
