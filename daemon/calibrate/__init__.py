@@ -1,0 +1,1 @@
+"""Camera and bench calibration: photon transfer, camera profiles, dose and precision budgets."""
