@@ -1,1 +1,1 @@
-"""Camera and bench calibration: photon transfer, camera profiles, dose and precision budgets."""
+"""Camera and bench calibration without devices: photon transfer, camera profiles, the precision budget (the planner)."""
