@@ -33,11 +33,11 @@ import numpy as np
 import zmq
 from rich.console import Console
 
-from maskrun.daemon.bench import build_bench
+from maskrun.daemon.acquire.bench import build_bench
 from maskrun.daemon.config import demo_config_text, parse_config
-from maskrun.daemon.foreground import RunRequest, run_foreground
-from maskrun.daemon.runfile import RunFile
-from maskrun.daemon.stream import Subscriber
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
+from maskrun.daemon.record.runfile import RunFile
+from maskrun.daemon.record.stream import Subscriber
 
 K = 8
 

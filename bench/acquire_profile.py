@@ -23,12 +23,12 @@ import numpy as np
 from rich.console import Console
 
 import acquire_bench as ab
-from maskrun.daemon import sequencer as seq_mod
-from maskrun.daemon import sequencer_frames as seq_frames_mod
-from maskrun.daemon import frame_writer as fw_mod
-from maskrun.daemon import stream as stream_mod
+from maskrun.daemon.acquire import sequencer as seq_mod
+from maskrun.daemon.acquire import sequencer_frames as seq_frames_mod
+from maskrun.daemon.acquire import frame_writer as fw_mod
+from maskrun.daemon.record import stream as stream_mod
 from maskrun.daemon.config import parse_config
-from maskrun.daemon.foreground import RunRequest, run_foreground
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
 
 TIMES: dict[str, list[float]] = collections.defaultdict(list)
 MARKS: dict[str, list[float]] = collections.defaultdict(list)

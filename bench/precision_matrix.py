@@ -99,8 +99,8 @@ def run_condition(c: Condition, *, grid: int, passes: int, folder: Path) -> dict
     from rich.console import Console
 
     from maskrun.daemon.config import parse_config
-    from maskrun.daemon.foreground import RunRequest, run_foreground
-    from maskrun.daemon.runfile import RunFile
+    from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
+    from maskrun.daemon.record.runfile import RunFile
     from maskrun.reconstruct.precision import MISFIT_CHI2_DOF
 
     folder.mkdir(parents=True, exist_ok=True)

@@ -40,7 +40,7 @@ from rich.console import Console
 
 def make_run(folder: Path, passes: int, small: bool = False) -> Path:
     from maskrun.daemon.config import load_demo_config
-    from maskrun.daemon.foreground import RunRequest, run_foreground
+    from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
 
     if small:
         import sys
@@ -76,8 +76,8 @@ def main(argv=None) -> int:
 
     import distributed
 
-    from maskrun.daemon.distributed import DaskRunner
-    from maskrun.daemon.reprocess import LocalRunner, ReprocessOptions, plan_tasks
+    from maskrun.daemon.offline.distributed import DaskRunner
+    from maskrun.daemon.offline.reprocess import LocalRunner, ReprocessOptions, plan_tasks
 
     os.environ.setdefault("OMP_NUM_THREADS", "1")
     console = Console()

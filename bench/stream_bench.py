@@ -1,7 +1,7 @@
 """Stream and control benchmark for the service.
 
 1. Stream: 1024 x 1024 uint16 frames published to two subscribers on loopback TCP,
-   once through ``maskrun.daemon.stream.Publisher`` (JSON header, sequence numbers,
+   once through ``maskrun.daemon.record.stream.Publisher`` (JSON header, sequence numbers,
    zero-copy payload) and once as a bare pyzmq ``send_multipart(copy=False)`` of the
    same buffers, in the same run, alternating rounds. Reported: sustained rate
    (frames per second delivered to BOTH subscribers, nothing dropped: unlimited
@@ -30,7 +30,7 @@ from pathlib import Path
 import numpy as np
 import zmq
 
-from maskrun.daemon.stream import Publisher
+from maskrun.daemon.record.stream import Publisher
 
 SHAPE = (1024, 1024)
 
@@ -132,7 +132,7 @@ def stream_benchmark(n_frames: int, rounds: int) -> dict:
 
 def control_benchmark(n_status: int) -> dict:
     """Status round trips against the real daemon while it acquires."""
-    from maskrun.daemon.client import ServiceClient
+    from maskrun.daemon.service.client import ServiceClient
     from maskrun.daemon.config import demo_config_text
 
     text = demo_config_text().replace("passes = 3", "passes = 100000", 1)

@@ -64,7 +64,7 @@ def make_data(n: int, frames: int = 8, estimates: int = 4, seed: int = 1):
 
 
 def _msg(topic, seq, meta, array):
-    from maskrun.daemon.stream import StreamHeader, StreamMessage
+    from maskrun.daemon.record.stream import StreamHeader, StreamMessage
 
     hdr = StreamHeader(topic=topic, seq=seq, global_seq=seq, t_s=time.time(), dtype=array.dtype.str,
                        shape=list(array.shape), meta=meta)
@@ -75,9 +75,9 @@ def bench_pyqtgraph(frames, ests, seconds: float, live_hz: float = TARGET_HZ) ->
     import zmq
     from PySide6 import QtWidgets
 
-    from maskrun.daemon.stream import Publisher, Subscriber
-    from maskrun.daemon.view import window_class
-    from maskrun.daemon.view_model import LiveViewState
+    from maskrun.daemon.record.stream import Publisher, Subscriber
+    from maskrun.daemon.show.view import window_class
+    from maskrun.daemon.show.view_model import LiveViewState
 
     app = QtWidgets.QApplication.instance() or QtWidgets.QApplication(["view_bench"])
     ctx = zmq.Context()
@@ -171,7 +171,7 @@ def bench_matplotlib_blit(frames, ests, seconds: float, backend: str) -> dict:
     matplotlib.use(backend)
     import matplotlib.pyplot as plt
 
-    from maskrun.daemon.figures import INTENSITY_CMAP, PHASE_CMAP, log_counts, phase_for_display
+    from maskrun.daemon.show.figures import INTENSITY_CMAP, PHASE_CMAP, log_counts, phase_for_display
 
     fig, axes = plt.subplots(2, 3, figsize=(15, 8.6), dpi=100, gridspec_kw={"height_ratios": [5, 2]})
     n0 = frames[0].shape

@@ -54,7 +54,7 @@ class LaserConfig(_Table):
 
     @model_validator(mode="after")
     def _class_fits_the_beam(self):
-        from .laser_hazard import declaration_problem
+        from maskrun.daemon.laser_hazard import declaration_problem
 
         problem = declaration_problem(self.laser_class, self.wavelength_m, self.power_w)
         if problem:

@@ -5,7 +5,7 @@ to demonstrate the software without a bench, or to test a config against real fr
 
 The run file is read directly with h5py in single-writer/multiple-reader mode (so a file
 that is still being written, or one left behind by a crash, can be replayed too). Drivers
-do not import the daemon, so the layout is read as documented in ``maskrun.daemon.store``:
+do not import the daemon, so the layout is read as documented in ``maskrun.daemon.record.run_layout``:
 ``/entry/frames`` (N, H, W) with ``/entry/frame_info`` (N,) rows, ``/entry/darks`` (D, H, W)
 with ``/entry/dark_info``, attribute ``format = "maskrun-run"`` on the file and
 ``camera_bit_depth`` on ``/entry``. Paired datasets may differ by one row after a crash;
@@ -57,7 +57,7 @@ from .errors import DeviceDisconnected, DeviceFault, DeviceMisconfigured, Device
 
 __all__ = ["ReplayCamera"]
 
-#: value of the file attribute ``format`` of a run file (maskrun.daemon.store.FORMAT_NAME)
+#: value of the file attribute ``format`` of a run file (maskrun.daemon.record.run_layout.FORMAT_NAME)
 RUN_FILE_FORMAT = "maskrun-run"
 
 

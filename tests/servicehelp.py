@@ -67,7 +67,7 @@ class Daemon:
 
     def stop(self) -> int:
         """Shut the daemon down through its control socket (kill if it does not answer)."""
-        from maskrun.daemon.client import ServiceClient, ServiceUnreachable
+        from maskrun.daemon.service.client import ServiceClient, ServiceUnreachable
 
         if self.proc.poll() is None and self.control:
             try:

@@ -15,7 +15,7 @@ import math
 import numpy as np
 import pytest
 
-from maskrun.daemon.budget import (
+from maskrun.daemon.calibrate.budget import (
     PlanError,
     PlanInfeasible,
     plan_photons,
@@ -23,8 +23,8 @@ from maskrun.daemon.budget import (
     representative_object,
     speckle_peak_to_mean,
 )
-from maskrun.daemon.camera_profile import CameraProfile
-from maskrun.daemon.dose import photon_energy_j
+from maskrun.daemon.calibrate.camera_profile import CameraProfile
+from maskrun.daemon.safety.dose import photon_energy_j
 from maskrun.reconstruct import forward, octanary_masks, relative_error, solve
 
 

@@ -4,8 +4,8 @@ import numpy as np
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from maskrun.daemon.checks import CheckLimits, FrameIdTracker, Response, check_frame, downsample_preview
-from maskrun.daemon.store import FLAG_ID_GAP, FLAG_PHOTONS_HIGH, FLAG_PHOTONS_LOW, FLAG_SATURATED
+from maskrun.daemon.record.checks import CheckLimits, FrameIdTracker, Response, check_frame, downsample_preview
+from maskrun.daemon.record.store import FLAG_ID_GAP, FLAG_PHOTONS_HIGH, FLAG_PHOTONS_LOW, FLAG_SATURATED
 
 RESP = Response(gain_dn_per_e=0.5, offset_dn=100.0, quantum_efficiency=0.5)
 

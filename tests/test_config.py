@@ -103,7 +103,7 @@ def test_response_needs_data_sheet_values_or_a_profile():
 def test_a_watchdog_shorter_than_one_frame_is_refused_when_the_bench_is_built():
     """The safety box's watchdog must outlast one frame's silence towards it (settle + exposure +
     grab timeout), else the box would close the shutter during normal frames."""
-    from maskrun.daemon.bench import build_bench
+    from maskrun.daemon.acquire.bench import build_bench
 
     text = _with(demo_config_text(), "exposure_s = 0.01", "exposure_s = 4.0")
     with pytest.raises(ConfigError) as exc:

@@ -12,8 +12,8 @@ import pytest
 from rich.console import Console
 
 from benchcfg import small_bench
-from maskrun.daemon import cli
-from maskrun.daemon.bench import build_bench
+from maskrun.daemon.commands import cli
+from maskrun.daemon.acquire.bench import build_bench
 from maskrun.drivers import DeviceTimeout, Frame
 from maskrun.drivers.conformance import (
     CHECK_NAMES,
@@ -261,7 +261,7 @@ def test_drivers_lists_every_kind_with_settings(capsys):
 
 
 def test_the_installed_command_runs_the_kit():
-    proc = subprocess.run([sys.executable, "-P", "-m", "maskrun.daemon.cli", "check-camera", "example-pattern"],
+    proc = subprocess.run([sys.executable, "-P", "-m", "maskrun.daemon.commands.cli", "check-camera", "example-pattern"],
                           capture_output=True, text=True, timeout=60)
     assert proc.returncode == 0, proc.stderr
     assert "0 failed" in proc.stdout

@@ -19,7 +19,7 @@ import time
 import pytest
 import zmq
 
-from maskrun.daemon.client import ServiceClient
+from maskrun.daemon.service.client import ServiceClient
 from servicehelp import Daemon, service_config_text
 
 

@@ -7,11 +7,11 @@ import numpy as np
 from rich.console import Console
 
 from benchcfg import small_bench_text
-from maskrun.daemon.budget import dark_frame_advice
+from maskrun.daemon.calibrate.budget import dark_frame_advice
 from maskrun.daemon.config import parse_config
-from maskrun.daemon.foreground import RunRequest, run_foreground
-from maskrun.daemon.reprocess import live_frame_sets
-from maskrun.daemon.runfile import RunFile
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
+from maskrun.daemon.offline.reprocess import live_frame_sets
+from maskrun.daemon.record.runfile import RunFile
 from maskrun.reconstruct import relative_error, solve
 
 PASSES = 24
@@ -57,7 +57,7 @@ def test_too_few_dark_frames_limit_an_accumulated_estimate_and_the_plan_says_so(
 def test_inspect_prints_event_messages_verbatim(tmp_path, capsys, monkeypatch):
     """Event messages are plain text: the dark-frame advice names the config table '[run]', which a
     terminal markup parser would swallow; `maskrun inspect` must print it as written."""
-    from maskrun.daemon import cli
+    from maskrun.daemon.commands import cli
 
     monkeypatch.setenv("COLUMNS", "400")
     text = small_bench_text(grid=16, sensor=24, masks=2, passes=PASSES, darks=1, extra_camera="real_time = false")

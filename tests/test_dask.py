@@ -15,10 +15,10 @@ from rich.console import Console
 distributed = pytest.importorskip("distributed")
 
 from benchcfg import small_bench  # noqa: E402
-from maskrun.daemon.cli import main as cli_main  # noqa: E402
-from maskrun.daemon.distributed import DaskRunner  # noqa: E402
-from maskrun.daemon.foreground import RunRequest, run_foreground  # noqa: E402
-from maskrun.daemon.reprocess import LocalRunner, ReprocessError, ReprocessOptions, read_results, reprocess_runs  # noqa: E402
+from maskrun.daemon.commands.cli import main as cli_main  # noqa: E402
+from maskrun.daemon.offline.distributed import DaskRunner  # noqa: E402
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground  # noqa: E402
+from maskrun.daemon.offline.reprocess import LocalRunner, ReprocessError, ReprocessOptions, read_results, reprocess_runs  # noqa: E402
 
 ITERATIONS = 30
 

@@ -12,12 +12,12 @@ import pytest
 from rich.console import Console
 
 from maskrun.daemon.config import parse_config
-from maskrun.daemon.disk import DiskGuard, DiskSpaceError, expected_run_bytes, free_bytes, series_passes
-from maskrun.daemon.foreground import RunRequest, run_foreground
-from maskrun.daemon.recovery import needs_repair
-from maskrun.daemon.runfile import RunFile
-from maskrun.daemon.sequencer import State
-from maskrun.daemon.store import RunStore, StoreWriteError, frame_info_record
+from maskrun.daemon.acquire.disk import DiskGuard, DiskSpaceError, expected_run_bytes, free_bytes, series_passes
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
+from maskrun.daemon.acquire.recovery import needs_repair
+from maskrun.daemon.record.runfile import RunFile
+from maskrun.daemon.acquire.sequencer import State
+from maskrun.daemon.record.store import RunStore, StoreWriteError, frame_info_record
 
 from test_faults import bench_text, run_bench
 from test_store import _header

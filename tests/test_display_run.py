@@ -17,11 +17,11 @@ import pytest
 from rich.console import Console
 
 from benchcfg import small_bench_text
-from maskrun.daemon.bench import build_bench
+from maskrun.daemon.acquire.bench import build_bench
 from maskrun.daemon.config import ConfigError, parse_config
 from maskrun.daemon.masks import make_masks
-from maskrun.daemon.foreground import RunRequest, run_foreground
-from maskrun.daemon.runfile import RunFile
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
+from maskrun.daemon.record.runfile import RunFile
 from maskrun.drivers.modulator_profile import linear_profile
 from xvfbhelp import expected_phase_image, xvfb_server
 

@@ -10,8 +10,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from maskrun.daemon.camera_profile import CameraProfile
-from maskrun.daemon.dose import (
+from maskrun.daemon.calibrate.camera_profile import CameraProfile
+from maskrun.daemon.safety.dose import (
     ELEMENTARY_CHARGE_C,
     PLANCK_J_S,
     SPEED_OF_LIGHT_M_PER_S,

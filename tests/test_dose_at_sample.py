@@ -11,11 +11,11 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from maskrun.daemon.budget import plan_photons
+from maskrun.daemon.calibrate.budget import plan_photons
 from maskrun.daemon.config import ConfigError, parse_config
-from maskrun.daemon.dose import DoseLedger, mask_mean_transmission
-from maskrun.daemon.runfile import RunFile
-from maskrun.daemon.sequencer import State
+from maskrun.daemon.safety.dose import DoseLedger, mask_mean_transmission
+from maskrun.daemon.record.runfile import RunFile
+from maskrun.daemon.acquire.sequencer import State
 from maskrun.reconstruct.masks import binary_amplitude_masks, octanary_masks
 
 from test_faults import bench_text, run_bench

@@ -18,15 +18,15 @@ import zmq
 from rich.console import Console
 
 from benchcfg import small_bench_text
-from maskrun.daemon.bench import build_bench
+from maskrun.daemon.acquire.bench import build_bench
 from maskrun.daemon.config import parse_config
-from maskrun.daemon.foreground import RunRequest, run_foreground
-from maskrun.daemon.runfile import RunFile
-from maskrun.daemon.safety import make_acknowledgement
-from maskrun.daemon.sequencer import RunControl, RunPlan, State
-from maskrun.daemon.session import execute_run
-from maskrun.daemon.stream import Subscriber
-from maskrun.daemon.store import (
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
+from maskrun.daemon.record.runfile import RunFile
+from maskrun.daemon.safety.safety import make_acknowledgement
+from maskrun.daemon.acquire.sequencer import RunControl, RunPlan, State
+from maskrun.daemon.acquire.session import execute_run
+from maskrun.daemon.record.stream import Subscriber
+from maskrun.daemon.record.store import (
     FLAG_AFTER_PAUSE,
     FLAG_EXPOSURE_SHORTENED,
     FLAG_ID_GAP,

@@ -19,7 +19,7 @@ from pathlib import Path
 
 import pytest
 
-from maskrun.daemon.client import ServiceClient
+from maskrun.daemon.service.client import ServiceClient
 from servicehelp import Daemon, service_config_text
 
 WATCHDOG_S = 1.0

@@ -19,12 +19,12 @@ import pytest
 from rich.console import Console
 
 from benchcfg import small_bench_text
-from maskrun.daemon.checks import CheckLimits, Response, check_frame
+from maskrun.daemon.record.checks import CheckLimits, Response, check_frame
 from maskrun.daemon.config import parse_config
-from maskrun.daemon.foreground import RunRequest, run_foreground
-from maskrun.daemon.reprocess import frame_set_intensities, mean_dark_dn, response_for_run
-from maskrun.daemon.runfile import RunFile
-from maskrun.daemon.store import RunHeader, RunStore
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
+from maskrun.daemon.offline.reprocess import frame_set_intensities, mean_dark_dn, response_for_run
+from maskrun.daemon.record.runfile import RunFile
+from maskrun.daemon.record.store import RunHeader, RunStore
 from maskrun.reconstruct import forward
 from maskrun.simulators.camera_model import CameraNoiseModel
 
@@ -209,7 +209,7 @@ def test_a_bad_flat_file_is_refused_with_one_line(calibrated, tmp_path, problem)
 
 def test_a_profile_alone_in_the_response_table_is_enough(calibrated):
     """What `maskrun calibrate` tells the user to write: [response] profile = ..., no data-sheet values."""
-    from maskrun.daemon.bench import build_bench
+    from maskrun.daemon.acquire.bench import build_bench
 
     text = small_bench_text(grid=GRID, sensor=SENSOR, prnu_fraction=PRNU)
     head = text.index("\n[response]")

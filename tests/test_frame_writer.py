@@ -1,7 +1,7 @@
-"""The frame writer thread (daemon.frame_writer): order, back-pressure without loss, flush at every
+"""The frame writer thread (daemon.acquire.frame_writer): order, back-pressure without loss, flush at every
 complete frame set and on a timer, durability before announcement, write errors raised in the caller,
 and a SIGKILL that loses no complete (durable) set. Real HDF5 files, real threads and processes;
-the one-pass conversion (daemon.frame_convert) and the preview against numpy's own functions."""
+the one-pass conversion (daemon.acquire.frame_convert) and the preview against numpy's own functions."""
 
 import subprocess
 import sys
@@ -14,11 +14,11 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from maskrun.daemon.checks import Response, downsample_preview
-from maskrun.daemon.frame_convert import electrons_shifted, shifted
-from maskrun.daemon.frame_writer import FrameWriter
-from maskrun.daemon.runfile import RunFile
-from maskrun.daemon.store import RunHeader, RunStore, StoreError, frame_info_record
+from maskrun.daemon.record.checks import Response, downsample_preview
+from maskrun.daemon.acquire.frame_convert import electrons_shifted, shifted
+from maskrun.daemon.acquire.frame_writer import FrameWriter
+from maskrun.daemon.record.runfile import RunFile
+from maskrun.daemon.record.store import RunHeader, RunStore, StoreError, frame_info_record
 
 K, SHAPE = 3, (8, 6)
 
@@ -40,7 +40,7 @@ def _info(i):
 def _reader_counts(path):
     """(frames, complete sets) a reader in another process sees now (SWMR)."""
     code = textwrap.dedent(f"""
-        from maskrun.daemon.runfile import RunFile
+        from maskrun.daemon.record.runfile import RunFile
         with RunFile({str(path)!r}) as rf:
             print(rf.frame_count, len(rf.complete_sets()))
     """)
@@ -136,8 +136,8 @@ def test_sigkill_loses_no_durable_set(tmp_path):
     path = tmp_path / "run.h5"
     code = textwrap.dedent(f"""
         import os, signal, sys, numpy as np
-        from maskrun.daemon.store import RunStore, RunHeader, frame_info_record
-        from maskrun.daemon.frame_writer import FrameWriter
+        from maskrun.daemon.record.store import RunStore, RunHeader, frame_info_record
+        from maskrun.daemon.acquire.frame_writer import FrameWriter
         h = RunHeader('t', '', {{}}, {SHAPE}, np.ones(({K},) + {SHAPE}, complex), np.dtype(np.uint16), 6e-7, 12)
         st = RunStore.create({str(path)!r}, h)
         w = FrameWriter(st, max_queue=4, flush_interval_s=60.0)

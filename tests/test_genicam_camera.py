@@ -230,7 +230,7 @@ def test_the_conformance_kit_on_a_real_camera():
 
 
 def test_the_cameras_verb_lists_vendor_model_serial_name_and_the_config_line(capsys, monkeypatch):
-    from maskrun.daemon.cli import main
+    from maskrun.daemon.commands.cli import main
 
     monkeypatch.setenv("COLUMNS", "160")
     assert main(["cameras", "--producer", "sim:viky"]) == 0

@@ -16,8 +16,8 @@ from rich.console import Console
 pytest.importorskip("harvesters.core", reason="the genicam extra is not installed")
 
 from maskrun.daemon.config import parse_config  # noqa: E402
-from maskrun.daemon.foreground import RunRequest, run_foreground  # noqa: E402
-from maskrun.daemon.runfile import RunFile  # noqa: E402
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground  # noqa: E402
+from maskrun.daemon.record.runfile import RunFile  # noqa: E402
 from maskrun.drivers.genicam_camera import GenicamCamera  # noqa: E402
 from maskrun.drivers.genicam_discovery import simulated_producer_path  # noqa: E402
 

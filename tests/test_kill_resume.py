@@ -31,10 +31,10 @@ from rich.console import Console
 
 from benchcfg import small_bench_text
 from maskrun.daemon.config import parse_config
-from maskrun.daemon.foreground import RunRequest, resume_foreground, run_foreground
-from maskrun.daemon.runfile import RunFile
-from maskrun.daemon.store import FLAG_AFTER_RESUME
-from maskrun.daemon.stream import Subscriber
+from maskrun.daemon.acquire.foreground import RunRequest, resume_foreground, run_foreground
+from maskrun.daemon.record.runfile import RunFile
+from maskrun.daemon.record.store import FLAG_AFTER_RESUME
+from maskrun.daemon.record.stream import Subscriber
 
 PASSES, MASKS, DARKS = 40, 4, 1
 MASKRUN = str(Path(sys.executable).parent / "maskrun")

@@ -16,7 +16,7 @@ from rich.console import Console
 
 from maskrun.daemon.config import ConfigError, demo_config_text, parse_config
 from maskrun.daemon.laser_hazard import CLASS_ORDER, class_limits, declaration_problem, lowest_class
-from maskrun.daemon.safety import make_acknowledgement, notice_lines, render_notice
+from maskrun.daemon.safety.safety import make_acknowledgement, notice_lines, render_notice
 
 # Hand values of the correction factors (formulas from memory of IEC 60825-1:2014, table 10):
 # C4 = 10^(0.002 (lambda/nm - 700)) for 700-1050 nm, 5 from 1050 to 1400 nm.

@@ -11,12 +11,12 @@ import pytest
 from rich.console import Console
 
 from slmbench import slm_bench_text
-from maskrun.daemon.bench import open_bench
-from maskrun.daemon.cli import main
+from maskrun.daemon.acquire.bench import open_bench
+from maskrun.daemon.commands.cli import main
 from maskrun.daemon.config import ConfigError, load_config, parse_config
-from maskrun.daemon.foreground import RunRequest, run_foreground
-from maskrun.daemon.mask_registration import apply_offset, frame_set_from_run, register, take_frame_set
-from maskrun.daemon.runfile import RunFile
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
+from maskrun.daemon.acquire.mask_registration import apply_offset, frame_set_from_run, register, take_frame_set
+from maskrun.daemon.record.runfile import RunFile
 from maskrun.reconstruct.masks import octanary_masks, shift_masks
 from maskrun.reconstruct.registration import circular_centroid, estimate_mask_offset, residual_at_offset
 from maskrun.simulators.sample import bare_beam, phase_target

@@ -11,13 +11,13 @@ import pytest
 from rich.console import Console
 
 from slmbench import slm_bench_text
-from maskrun.daemon.bench import build_bench, open_bench
-from maskrun.daemon.cli import main
+from maskrun.daemon.acquire.bench import build_bench, open_bench
+from maskrun.daemon.commands.cli import main
 from maskrun.daemon.config import ConfigError, parse_config
-from maskrun.daemon.foreground import RunRequest, run_foreground
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
 from maskrun.daemon.masks import make_masks
-from maskrun.daemon.modulator_response import measure_response, profile_from_frames, split_image
-from maskrun.daemon.runfile import RunFile
+from maskrun.daemon.acquire.modulator_response import measure_response, profile_from_frames, split_image
+from maskrun.daemon.record.runfile import RunFile
 from maskrun.drivers.errors import DeviceMisconfigured
 from maskrun.drivers.modulator_profile import ModulatorProfile, linear_profile
 from maskrun.reconstruct.phase_steps import phase_steps

@@ -24,11 +24,11 @@ import pytest
 from rich.console import Console
 
 from benchcfg import small_bench
-from maskrun.daemon import cli
-from maskrun.daemon.foreground import RunRequest, run_foreground
-from maskrun.daemon.recovery import needs_repair, repair_run_file, resume_point
-from maskrun.daemon.runfile import RunFile
-from maskrun.daemon.store import FORMAT_VERSION, RunHeader, RunStore, StoreError
+from maskrun.daemon.commands import cli
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
+from maskrun.daemon.acquire.recovery import needs_repair, repair_run_file, resume_point
+from maskrun.daemon.record.runfile import RunFile
+from maskrun.daemon.record.store import FORMAT_VERSION, RunHeader, RunStore, StoreError
 
 V1_FILE = Path(__file__).parent / "data" / "run-v1.h5"  # written by the code before NeXus (tests/data/README.md)
 
@@ -156,7 +156,7 @@ def test_unknown_safety_values_stay_unknown(tmp_path):
 
 KILLED_WRITER = textwrap.dedent("""
     import os, signal, sys, numpy as np
-    from maskrun.daemon.store import RunStore, RunHeader, frame_info_record, estimate_info_record
+    from maskrun.daemon.record.store import RunStore, RunHeader, frame_info_record, estimate_info_record
     h = RunHeader('w', '[run]\\nname="w"\\n', {}, (8, 8), np.ones((2, 8, 8), complex), np.dtype(np.uint16), 6e-7, 12)
     st = RunStore.create(sys.argv[1], h)
     for i in range(6):

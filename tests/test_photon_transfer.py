@@ -19,14 +19,14 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from maskrun.daemon.calibration import CalibrationAborted, default_exposure_series, measure_photon_transfer
-from maskrun.daemon.camera_profile import (
+from maskrun.daemon.calibrate.calibration import CalibrationAborted, default_exposure_series, measure_photon_transfer
+from maskrun.daemon.calibrate.camera_profile import (
     CameraProfile,
     ProfileError,
     ProfileMismatch,
     check_profile_matches,
 )
-from maskrun.daemon.photon_transfer import (
+from maskrun.daemon.calibrate.photon_transfer import (
     LightTooWeak,
     SaturatedFromStart,
     TooFewSteps,

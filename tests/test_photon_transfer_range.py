@@ -7,7 +7,7 @@ Outside reference: EMVA Standard 1288, Release 4.0 Linear (2021), sec. 2 (from m
 system gain K, plus the offset, rounded to DN (quantisation noise 1/12 DN^2) and clipped to the
 ADC range; sigma_y.dark^2 = K^2 sigma_d^2 + 1/12 DN^2. The quantisation limit sigma_y.dark^2 <
 0.24 DN^2 and the upper limit sigma_d < 0.49 / K are from memory of the standard's dark-noise
-section; the other thresholds are common practice, no source (see daemon/photon_transfer.py).
+section; the other thresholds are common practice, no source (see daemon/calibrate/photon_transfer.py).
 """
 
 from __future__ import annotations
@@ -18,9 +18,9 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from maskrun.daemon.calibration import photons_per_pixel_per_s_from_power
-from maskrun.daemon.camera_profile import CameraProfile
-from maskrun.daemon.photon_transfer import analyse_photon_transfer, dark_noise_e, step_statistics
+from maskrun.daemon.calibrate.calibration import photons_per_pixel_per_s_from_power
+from maskrun.daemon.calibrate.camera_profile import CameraProfile
+from maskrun.daemon.calibrate.photon_transfer import analyse_photon_transfer, dark_noise_e, step_statistics
 from maskrun.simulators.camera_model import CameraNoiseModel
 
 SHAPE = (96, 96)
@@ -124,8 +124,8 @@ def test_calibrate_reports_qe_from_a_power_meter_reading(tmp_path):
     from rich.console import Console
 
     from benchcfg import small_bench_text
-    from maskrun.daemon.bench import build_bench
-    from maskrun.daemon.cmd_calibrate import _uniform_light
+    from maskrun.daemon.acquire.bench import build_bench
+    from maskrun.daemon.commands.cmd_calibrate import _uniform_light
     from maskrun.daemon.config import parse_config
 
     text = small_bench_text(grid=32, sensor=40)

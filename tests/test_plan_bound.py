@@ -18,7 +18,7 @@ import sys
 import numpy as np
 import pytest
 
-from maskrun.daemon.budget import PlanError, plan_photons, representative_object
+from maskrun.daemon.calibrate.budget import PlanError, plan_photons, representative_object
 from maskrun.daemon.config import demo_config_text
 from maskrun.daemon.masks import make_masks
 

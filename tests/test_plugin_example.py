@@ -7,10 +7,10 @@ import numpy as np
 import pytest
 from rich.console import Console
 
-from maskrun.daemon.bench import build_bench
+from maskrun.daemon.acquire.bench import build_bench
 from maskrun.daemon.config import ConfigError, parse_config
-from maskrun.daemon.foreground import RunRequest, run_foreground
-from maskrun.daemon.runfile import RunFile
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
+from maskrun.daemon.record.runfile import RunFile
 from maskrun.drivers.conformance import assert_conformant
 from maskrun.drivers.registry import describe_drivers, installed_drivers
 

@@ -92,7 +92,9 @@ def test_daemon_worker_asks_for_single_precision_explicitly():
     # it must not silently switch to double-precision cost: it passes dtype=complex64.
     import inspect
 
-    from maskrun.daemon import align, worker
+    from maskrun.daemon.acquire import align
+
+    from maskrun.daemon.compute import worker
 
     assert "dtype=np.complex64" in inspect.getsource(worker.WorkerLoop._engine_for)
     assert "dtype=np.complex64" in inspect.getsource(align)

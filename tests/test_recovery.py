@@ -14,19 +14,19 @@ import numpy as np
 import pytest
 from rich.console import Console
 
-from maskrun.daemon import cli
+from maskrun.daemon.commands import cli
 from maskrun.daemon.config import parse_config
-from maskrun.daemon.foreground import RunRequest, run_foreground
-from maskrun.daemon.recovery import ResumeError, needs_repair, repair_run_file, resume_point
-from maskrun.daemon.runfile import RunFile
-from maskrun.daemon.sequencer import State
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
+from maskrun.daemon.acquire.recovery import ResumeError, needs_repair, repair_run_file, resume_point
+from maskrun.daemon.record.runfile import RunFile
+from maskrun.daemon.acquire.sequencer import State
 
 from test_disk import _fill, tiny_disk  # noqa: F401  (fixture)
 from test_faults import bench_text, run_bench
 
 WRITER = textwrap.dedent("""
     import os, signal, socket, sys, time, numpy as np
-    from maskrun.daemon.store import RunStore, RunHeader, frame_info_record
+    from maskrun.daemon.record.store import RunStore, RunHeader, frame_info_record
     path, frames, then = sys.argv[1], int(sys.argv[2]), sys.argv[3]
     h = RunHeader('w', '[run]\\nname="w"\\n', {}, (16, 16), np.ones((2, 16, 16), complex), np.dtype(np.uint16), 6e-7, 12)
     st = RunStore.create(path, h)
@@ -86,7 +86,7 @@ def test_repair_refuses_without_room_for_the_copy_and_leaves_the_original(tiny_d
     _writer(path, 40, "kill").wait(30)
     before = _sha(path)
     _fill(tiny_disk, leave_bytes=16 * 1024)
-    from maskrun.daemon.disk import DiskSpaceError
+    from maskrun.daemon.acquire.disk import DiskSpaceError
 
     with pytest.raises(DiskSpaceError, match="needs room for a copy"):
         repair_run_file(path)
@@ -153,8 +153,8 @@ def test_resumed_run_live_estimate_continues_from_the_sets_already_in_the_file(t
     """Stop a run with live reconstruction after 2 of 5 frame sets, resume it: the first estimate after
     the resume averages 3 sets, and every live estimate used the same detected photons as an offline
     cumulative reconstruction of the finished file (so the preloaded sets were converted like live ones)."""
-    from maskrun.daemon.foreground import resume_foreground
-    from maskrun.daemon.reprocess import InProcessRunner, ReprocessOptions, read_results, reprocess_runs
+    from maskrun.daemon.acquire.foreground import resume_foreground
+    from maskrun.daemon.offline.reprocess import InProcessRunner, ReprocessOptions, read_results, reprocess_runs
 
     from benchcfg import small_bench_text
 

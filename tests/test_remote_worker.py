@@ -20,15 +20,15 @@ import zmq
 from zmq.utils.monitor import recv_monitor_message
 
 from benchcfg import small_bench_text
-from maskrun.daemon.cli import main as cli_main
+from maskrun.daemon.commands.cli import main as cli_main
 from maskrun.daemon.config import ConfigError, ReconstructionConfig, parse_config
-from maskrun.daemon.foreground import RunRequest, run_foreground
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
 from maskrun.daemon.masks import make_masks
-from maskrun.daemon.recon_link import ReconLink
-from maskrun.daemon.remote_workers import link_options, worker_endpoints
-from maskrun.daemon.runfile import RunFile
+from maskrun.daemon.compute.recon_link import ReconLink
+from maskrun.daemon.compute.remote_workers import link_options, worker_endpoints
+from maskrun.daemon.record.runfile import RunFile
 from maskrun.daemon.security import generate_keys, load_server_keys
-from maskrun.daemon.worker import EstimateHeader
+from maskrun.daemon.compute.worker import EstimateHeader
 from maskrun.reconstruct import forward, relative_error
 
 from rich.console import Console
@@ -56,7 +56,7 @@ def _free_port_pair() -> int:
 
 def _maskrun_command() -> list[str]:
     exe = Path(sys.executable).parent / "maskrun"
-    return [str(exe)] if exe.exists() else [sys.executable, "-m", "maskrun.daemon.cli"]
+    return [str(exe)] if exe.exists() else [sys.executable, "-m", "maskrun.daemon.commands.cli"]
 
 
 class WorkerProcess:
@@ -323,7 +323,7 @@ def test_unsafe_addresses_are_refused(capsys, tmp_path):
 def test_worker_fed_running_means_matches_an_accumulating_engine():
     """A worker given the daemon's running mean (data_passes) picks the same solver and reaches the same
     estimate as an accumulate-mode IncrementalEngine fed the frame sets one by one (real PUSH/PULL on loopback)."""
-    from maskrun.daemon.worker import FrameSetHeader, MaskSpec, ReconOptions, WorkerLoop, mask_digest
+    from maskrun.daemon.compute.worker import FrameSetHeader, MaskSpec, ReconOptions, WorkerLoop, mask_digest
     from maskrun.reconstruct import IncrementalEngine
     from maskrun.reconstruct.incremental import update_method
 

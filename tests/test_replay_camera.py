@@ -11,9 +11,9 @@ from rich.console import Console
 
 from benchcfg import small_bench
 from maskrun.daemon.config import load_config
-from maskrun.daemon.foreground import RunRequest, run_foreground
-from maskrun.daemon.runfile import RunFile
-from maskrun.daemon.store import FRAME_INFO_DTYPE, RunHeader, RunStore
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
+from maskrun.daemon.record.runfile import RunFile
+from maskrun.daemon.record.store import FRAME_INFO_DTYPE, RunHeader, RunStore
 from maskrun.drivers import BenchContext, DeviceDisconnected, DeviceMisconfigured, DeviceTimeout
 from maskrun.drivers.conformance import assert_conformant
 from maskrun.drivers.registry import build_driver
@@ -282,7 +282,7 @@ min_photons_per_frame = 1.0e3
 
 def test_the_layout_the_driver_reads_matches_the_writer():
     # drivers may not import the daemon, so the replay camera keeps its own copy of the format name
-    from maskrun.daemon.store import FORMAT_NAME
+    from maskrun.daemon.record.store import FORMAT_NAME
     from maskrun.drivers.replay_camera import RUN_FILE_FORMAT
 
     assert RUN_FILE_FORMAT == FORMAT_NAME

@@ -15,8 +15,8 @@ import pytest
 from benchcfg import small_bench_text
 
 from maskrun.daemon.config import parse_config
-from maskrun.daemon.report import read_story, write_report
-from maskrun.daemon.store import FLAG_NAMES
+from maskrun.daemon.show.report import read_story, write_report
+from maskrun.daemon.record.store import FLAG_NAMES
 
 MASKRUN = str(Path(sys.executable).with_name("maskrun"))
 
@@ -24,10 +24,10 @@ MASKRUN = str(Path(sys.executable).with_name("maskrun"))
 def _run(tmp_path, name, *, faults="", passes=3, log_extra=None):
     import zmq
 
-    from maskrun.daemon.bench import build_bench
-    from maskrun.daemon.safety import make_acknowledgement
-    from maskrun.daemon.sequencer import RunPlan
-    from maskrun.daemon.session import execute_run
+    from maskrun.daemon.acquire.bench import build_bench
+    from maskrun.daemon.safety.safety import make_acknowledgement
+    from maskrun.daemon.acquire.sequencer import RunPlan
+    from maskrun.daemon.acquire.session import execute_run
 
     text = small_bench_text(grid=32, sensor=40, masks=6, passes=passes, darks=1, extra_camera=faults)
     text = text.replace("grab_timeout_s = 2.0", "grab_timeout_s = 0.2")
@@ -98,10 +98,10 @@ def test_report_png_and_html_tell_the_story(faulty_run, tmp_path):
 
 
 def test_cut_off_run_and_hostile_text_are_reported_safely(tmp_path):
-    from maskrun.daemon.bench import build_bench
-    from maskrun.daemon.safety import make_acknowledgement
-    from maskrun.daemon.session import run_header
-    from maskrun.daemon.store import RunStore, frame_info_record
+    from maskrun.daemon.acquire.bench import build_bench
+    from maskrun.daemon.safety.safety import make_acknowledgement
+    from maskrun.daemon.acquire.session import run_header
+    from maskrun.daemon.record.store import RunStore, frame_info_record
 
     cfg = parse_config(small_bench_text(grid=32, sensor=40, masks=6), "cut.toml")
     bench = build_bench(cfg)

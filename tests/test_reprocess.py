@@ -14,9 +14,9 @@ import pytest
 from rich.console import Console
 
 from benchcfg import small_bench
-from maskrun.daemon.cli import main as cli_main
-from maskrun.daemon.foreground import RunRequest, run_foreground
-from maskrun.daemon.reprocess import (
+from maskrun.daemon.commands.cli import main as cli_main
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
+from maskrun.daemon.offline.reprocess import (
     InProcessRunner,
     LocalRunner,
     ReprocessError,
@@ -31,8 +31,8 @@ from maskrun.daemon.reprocess import (
     response_from_config_text,
     results_path_for,
 )
-from maskrun.daemon.runfile import RunFile
-from maskrun.daemon.store import StoreError
+from maskrun.daemon.record.runfile import RunFile
+from maskrun.daemon.record.store import StoreError
 from maskrun.reconstruct import forward, kernels
 
 ITERATIONS = 40
@@ -175,7 +175,7 @@ def test_cli_reconstruct(run_path, tmp_path, capsys):
 def test_a_run_with_a_profile_reprocesses_with_the_profile_gain(tmp_path):
     """The run file records the response actually used; reprocessing must not fall back to [response]."""
     from benchcfg import small_bench_text
-    from maskrun.daemon.camera_profile import CameraProfile
+    from maskrun.daemon.calibrate.camera_profile import CameraProfile
     from maskrun.daemon.config import parse_config
 
     # the true camera: gain 0.3 DN/e-, offset 100 DN, QE 0.6 (the demo camera); [response] says 0.5

@@ -10,8 +10,8 @@ import numpy as np
 from rich.console import Console
 
 from maskrun.daemon.config import demo_config_text, parse_config
-from maskrun.daemon.foreground import RunRequest, run_foreground
-from maskrun.daemon.runfile import RunFile
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
+from maskrun.daemon.record.runfile import RunFile
 
 README = Path(__file__).resolve().parents[1] / "docs" / "run-file.md"  # the run-file document
 

@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 
 from benchcfg import small_bench_text
-from maskrun.daemon.runfile import RunFile
+from maskrun.daemon.record.runfile import RunFile
 
 MASKRUN = str(Path(sys.executable).parent / "maskrun")
 MASKS, PASSES = 3, 4
@@ -114,8 +114,8 @@ def test_finishing_adds_only_the_estimates_still_missing(tmp_path):
         before = rf.estimate_count
         old = rf.estimates()[:before] if before else None
     from maskrun.daemon.config import parse_config
-    from maskrun.daemon.finish import finish_run_file
-    from maskrun.daemon.recovery import resume_point
+    from maskrun.daemon.acquire.finish import finish_run_file
+    from maskrun.daemon.acquire.recovery import resume_point
 
     point = resume_point(path)
     assert point.finish_only

@@ -8,10 +8,10 @@ import pytest
 from rich.console import Console
 
 from benchcfg import small_bench
-from maskrun.daemon.foreground import RunRequest, run_foreground
-from maskrun.daemon.runfile import RunFile
-from maskrun.daemon.safety import SafetyNotAcknowledged
-from maskrun.daemon.store import FLAG_RETAKEN
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
+from maskrun.daemon.record.runfile import RunFile
+from maskrun.daemon.safety.safety import SafetyNotAcknowledged
+from maskrun.daemon.record.store import FLAG_RETAKEN
 
 
 def _console():
@@ -93,10 +93,10 @@ def test_acknowledgement_is_recorded_in_the_file(tmp_path):
 def test_open_interlock_keeps_the_shutter_closed(tmp_path):
     import zmq
 
-    from maskrun.daemon.bench import build_bench
-    from maskrun.daemon.safety import make_acknowledgement
-    from maskrun.daemon.sequencer import RunPlan
-    from maskrun.daemon.session import execute_run
+    from maskrun.daemon.acquire.bench import build_bench
+    from maskrun.daemon.safety.safety import make_acknowledgement
+    from maskrun.daemon.acquire.sequencer import RunPlan
+    from maskrun.daemon.acquire.session import execute_run
 
     cfg = small_bench(passes=1)
     bench = build_bench(cfg)

@@ -16,10 +16,10 @@ import numpy as np
 import pytest
 from rich.console import Console
 
-from maskrun.daemon.client import ServiceClient
-from maskrun.daemon.stream import Subscriber
-from maskrun.daemon.view_model import LiveViewState
-from maskrun.daemon.watch import WATCH_TOPICS, WatchModel, render
+from maskrun.daemon.service.client import ServiceClient
+from maskrun.daemon.record.stream import Subscriber
+from maskrun.daemon.show.view_model import LiveViewState
+from maskrun.daemon.show.watch import WATCH_TOPICS, WatchModel, render
 from servicehelp import MASKRUN, Daemon, service_config_text
 
 PASSES, EXPOSURE_S, DARKS = 10, 0.003, 1  # overrides; the config says 2 passes, 0.002 s, 2 dark frames
@@ -173,7 +173,7 @@ def test_after_the_run_every_display_shows_the_files_figures(run):
 
 
 def test_the_report_shows_overrides_every_acknowledgement_and_the_precision(run):
-    from maskrun.daemon.report import write_report
+    from maskrun.daemon.show.report import write_report
 
     truth = _file_truth(run["path"])
     files = write_report(run["path"])
@@ -186,7 +186,7 @@ def test_the_report_shows_overrides_every_acknowledgement_and_the_precision(run)
 
 
 def test_stream_flags_are_the_files_bitmask(run):
-    from maskrun.daemon.store import flag_names
+    from maskrun.daemon.record.store import flag_names
 
     truth = _file_truth(run["path"])
     meta = run["view"].frame_meta
@@ -200,10 +200,10 @@ def test_a_resumed_run_tells_every_acknowledgement_and_its_outcome_alike(tmp_pat
     """Foreground: stopped after 2 of 4 sets with overrides, resumed; the summary, the report and the file's
     account agree; the report lists both safety acknowledgements and explains after_resume as a resume."""
     from benchcfg import small_bench_text
-    from maskrun.daemon.foreground import RunRequest, print_summary, resume_foreground
-    from maskrun.daemon.report import FLAG_EXPLANATIONS, write_report
-    from maskrun.daemon.run_state import state_from_file
-    from maskrun.daemon.sequencer import State
+    from maskrun.daemon.acquire.foreground import RunRequest, print_summary, resume_foreground
+    from maskrun.daemon.show.report import FLAG_EXPLANATIONS, write_report
+    from maskrun.daemon.record.run_state import state_from_file
+    from maskrun.daemon.acquire.sequencer import State
     from test_faults import run_bench
 
     text = small_bench_text(masks=4, passes=2, darks=1, recon_iterations=20)
@@ -237,8 +237,8 @@ def test_a_resumed_run_tells_every_acknowledgement_and_its_outcome_alike(tmp_pat
 
 
 def test_client_replies_and_outcomes_read_as_sentences():
-    from maskrun.daemon.client import reply_sentence
-    from maskrun.daemon.run_state import mask_label, outcome_sentence, pass_label
+    from maskrun.daemon.service.client import reply_sentence
+    from maskrun.daemon.record.run_state import mask_label, outcome_sentence, pass_label
 
     assert reply_sentence("stop", {"stopping": "run", "output_path": "runs/a.h5"}).startswith("Stopping the run")
     assert reply_sentence("pause", {"pausing": True, "note": "x"}).startswith("Pausing:")

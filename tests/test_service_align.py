@@ -13,9 +13,9 @@ import zmq
 from rich.console import Console
 from scipy import ndimage
 
-from maskrun.daemon.client import RequestRefused, ServiceClient
-from maskrun.daemon.stream import Subscriber
-from maskrun.daemon.watch import SATURATED_RGB, WatchModel, render
+from maskrun.daemon.service.client import RequestRefused, ServiceClient
+from maskrun.daemon.record.stream import Subscriber
+from maskrun.daemon.show.watch import SATURATED_RGB, WatchModel, render
 from maskrun.reconstruct import relative_error
 from servicehelp import Daemon, service_config_text
 

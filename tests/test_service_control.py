@@ -9,8 +9,8 @@ import time
 import numpy as np
 import pytest
 
-from maskrun.daemon.client import RequestRefused, ServiceClient
-from maskrun.daemon.runfile import RunFile
+from maskrun.daemon.service.client import RequestRefused, ServiceClient
+from maskrun.daemon.record.runfile import RunFile
 from servicehelp import MASKRUN, Daemon, service_config_text
 
 K = 6  # masks in the small bench

@@ -10,9 +10,9 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from maskrun.daemon.client import ServiceClient, ServiceUnreachable
-from maskrun.daemon.control import REQUEST_NAMES
-from maskrun.daemon.runfile import RunFile
+from maskrun.daemon.service.client import ServiceClient, ServiceUnreachable
+from maskrun.daemon.service.control import REQUEST_NAMES
+from maskrun.daemon.record.runfile import RunFile
 from servicehelp import Daemon, service_config_text
 
 K = 6

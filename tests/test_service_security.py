@@ -9,7 +9,7 @@ import subprocess
 import pytest
 import zmq
 
-from maskrun.daemon.client import ServiceClient, ServiceUnreachable
+from maskrun.daemon.service.client import ServiceClient, ServiceUnreachable
 from maskrun.daemon.security import (
     InsecureBinding,
     KeyFileError,

@@ -12,10 +12,10 @@ import pytest
 import zmq
 from rich.console import Console
 
-from maskrun.daemon.client import ServiceClient
-from maskrun.daemon.runfile import RunFile
-from maskrun.daemon.stream import SCHEMA_VERSION, Subscriber
-from maskrun.daemon.watch import UPPER_HALF_BLOCK, WatchModel, render, run_watch
+from maskrun.daemon.service.client import ServiceClient
+from maskrun.daemon.record.runfile import RunFile
+from maskrun.daemon.record.stream import SCHEMA_VERSION, Subscriber
+from maskrun.daemon.show.watch import UPPER_HALF_BLOCK, WatchModel, render, run_watch
 from servicehelp import Daemon, service_config_text
 
 K = 4
@@ -79,7 +79,7 @@ def test_stream_messages_carry_schema_dtype_shape_and_sequence_numbers(client, d
 
 def test_watch_renders_a_live_run_into_a_string_console(client, daemon):
     ctx = zmq.Context()
-    from maskrun.daemon.watch import WATCH_TOPICS
+    from maskrun.daemon.show.watch import WATCH_TOPICS
 
     sub = Subscriber(ctx, daemon.stream, WATCH_TOPICS, hwm=100)
     time.sleep(0.3)
@@ -137,7 +137,7 @@ def test_a_stalled_subscriber_does_not_slow_acquisition(client, daemon):
             t = rf.frame_info()["t_frame_s"]
             assert np.max(np.diff(t)) < 1.0  # no stall between frames
         # ... and the stalled subscriber lost messages (documented drop policy) instead of holding the run
-        from maskrun.daemon.stream import decode_message
+        from maskrun.daemon.record.stream import decode_message
 
         seen = []
         drain_until = time.monotonic() + 1.5  # status messages keep coming: drain for a bounded time
@@ -157,7 +157,7 @@ def test_terminal_image_helpers_agree_with_reference_implementations():
 
     from skimage.measure import block_reduce
 
-    from maskrun.daemon.watch import phase_rgb, shrink
+    from maskrun.daemon.show.watch import phase_rgb, shrink
 
     rng = np.random.default_rng(5)
     field_ = rng.normal(size=(6, 7)) + 1j * rng.normal(size=(6, 7))

@@ -7,11 +7,11 @@ import numpy as np
 import pytest
 from rich.console import Console
 
-from maskrun.daemon.cli import main as cli_main
+from maskrun.daemon.commands.cli import main as cli_main
 from maskrun.daemon.config import parse_config
-from maskrun.daemon.foreground import RunRequest, run_foreground
-from maskrun.daemon.reprocess import read_results
-from maskrun.daemon.runfile import RunFile
+from maskrun.daemon.acquire.foreground import RunRequest, run_foreground
+from maskrun.daemon.offline.reprocess import read_results
+from maskrun.daemon.record.runfile import RunFile
 
 CONFIG = Path(__file__).resolve().parents[1] / "configs" / "single-pattern.toml"
 

@@ -16,8 +16,8 @@ import h5py
 import numpy as np
 import pytest
 
-from maskrun.daemon.runfile import RunFile
-from maskrun.daemon.sequencer import RunControl, State
+from maskrun.daemon.record.runfile import RunFile
+from maskrun.daemon.acquire.sequencer import RunControl, State
 
 from test_faults import bench_text, run_bench
 

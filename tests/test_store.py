@@ -9,8 +9,8 @@ import h5py
 import numpy as np
 import pytest
 
-from maskrun.daemon.runfile import RunFile
-from maskrun.daemon.store import (
+from maskrun.daemon.record.runfile import RunFile
+from maskrun.daemon.record.store import (
     FLAG_SATURATED,
     RunHeader,
     RunStore,
@@ -104,7 +104,7 @@ def test_reader_sees_frames_while_the_writer_is_open(tmp_path):
     _write_sets(st, 1)
     st.flush()
     code = textwrap.dedent(f"""
-        from maskrun.daemon.runfile import RunFile
+        from maskrun.daemon.record.runfile import RunFile
         with RunFile({str(path)!r}) as rf:
             print(rf.frame_count, len(rf.complete_sets()))
     """)
@@ -119,7 +119,7 @@ def test_file_survives_sigkill_of_the_writer(tmp_path):
     path = tmp_path / "run.h5"
     code = textwrap.dedent(f"""
         import os, signal, numpy as np
-        from maskrun.daemon.store import RunStore, RunHeader, frame_info_record
+        from maskrun.daemon.record.store import RunStore, RunHeader, frame_info_record
         h = RunHeader('t', '', {{}}, (8, 6), np.ones((3, 8, 6), complex), np.dtype(np.uint16), 6e-7, 12)
         st = RunStore.create({str(path)!r}, h)
         rng = np.random.default_rng(5)

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 import zmq
 
-from maskrun.daemon.stream import Publisher, StreamError, Subscriber, decode_message
+from maskrun.daemon.record.stream import Publisher, StreamError, Subscriber, decode_message
 
 
 @pytest.fixture

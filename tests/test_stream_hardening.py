@@ -19,9 +19,9 @@ import time
 import pytest
 import zmq
 
-from maskrun.daemon.client import ServiceClient
+from maskrun.daemon.service.client import ServiceClient
 from maskrun.daemon.security import generate_keys, load_client_keys
-from maskrun.daemon.stream import MAX_SUBSCRIPTION_BYTES, WITHHELD, Subscriber, redact, subscription_allowed
+from maskrun.daemon.record.stream import MAX_SUBSCRIPTION_BYTES, WITHHELD, Subscriber, redact, subscription_allowed
 from servicehelp import Daemon, service_config_text
 
 MiB = 1 << 20

@@ -20,8 +20,8 @@ from pydantic import ValidationError
 from rich.console import Console
 
 from benchcfg import small_bench_text
-from maskrun.daemon import control as C
-from maskrun.daemon.client import RequestRefused, ServiceClient
+from maskrun.daemon.service import control as C
+from maskrun.daemon.service.client import RequestRefused, ServiceClient
 from maskrun.daemon.config import ConfigError, parse_config
 from servicehelp import MASKRUN, Daemon, service_config_text
 
@@ -95,7 +95,7 @@ def test_a_config_exposure_below_the_cameras_minimum_is_refused_when_read(tmp_pa
     assert "camera.exposure_s" in out.stderr and "outside what the camera takes" in out.stderr
     assert "acknowledged" not in out.stdout.lower()  # refused before the notice
     assert not list(tmp_path.rglob("*.h5"))
-    from maskrun.daemon.bench import build_bench
+    from maskrun.daemon.acquire.bench import build_bench
 
     with pytest.raises(ConfigError, match="camera.exposure_s"):
         build_bench(parse_config(text, str(cfg_path)))
@@ -104,9 +104,9 @@ def test_a_config_exposure_below_the_cameras_minimum_is_refused_when_read(tmp_pa
 def test_a_run_the_camera_refuses_before_its_first_frame_does_not_advise_resuming(tmp_path, monkeypatch):
     """A driver that does not report its limits (the interface default) and refuses the exposure when
     the run sets it: the run faults with 0 frames and says no resume can fix it; resume agrees."""
-    from maskrun.daemon.foreground import RunRequest, resume_foreground, run_foreground
-    from maskrun.daemon.recovery import ResumeError
-    from maskrun.daemon.runfile import RunFile
+    from maskrun.daemon.acquire.foreground import RunRequest, resume_foreground, run_foreground
+    from maskrun.daemon.acquire.recovery import ResumeError
+    from maskrun.daemon.record.runfile import RunFile
     from maskrun.drivers.base import Camera
     from maskrun.simulators.camera import SimulatedCamera
 

@@ -23,10 +23,10 @@ import pytest
 import zmq
 from benchcfg import small_bench
 
-from maskrun.daemon.figures import PHASE_CMAP, colormap_lut, phase_for_display, unwrap_phase_ls
-from maskrun.daemon.stream import Publisher, Subscriber
-from maskrun.daemon.view import normalise_address
-from maskrun.daemon.view_model import LiveViewState
+from maskrun.daemon.show.figures import PHASE_CMAP, colormap_lut, phase_for_display, unwrap_phase_ls
+from maskrun.daemon.record.stream import Publisher, Subscriber
+from maskrun.daemon.show.view import normalise_address
+from maskrun.daemon.show.view_model import LiveViewState
 
 MASKRUN = str(Path(sys.executable).with_name("maskrun"))
 
@@ -90,7 +90,7 @@ def test_model_follows_a_real_stream(ctx):
 
 
 def test_fps_is_measured_from_arrival_times_and_goes_to_zero_when_frames_stop():
-    from maskrun.daemon.stream import StreamHeader, StreamMessage
+    from maskrun.daemon.record.stream import StreamHeader, StreamMessage
 
     state = LiveViewState()
     f = np.zeros((4, 4), np.uint16)
@@ -214,10 +214,10 @@ def _corr(a, b):
 
 
 def test_view_window_shows_the_live_stream_under_xvfb(xvfb, tmp_path):
-    from maskrun.daemon.bench import build_bench
-    from maskrun.daemon.safety import make_acknowledgement
-    from maskrun.daemon.sequencer import RunPlan
-    from maskrun.daemon.session import execute_run
+    from maskrun.daemon.acquire.bench import build_bench
+    from maskrun.daemon.safety.safety import make_acknowledgement
+    from maskrun.daemon.acquire.sequencer import RunPlan
+    from maskrun.daemon.acquire.session import execute_run
 
     cfg = small_bench(grid=64, sensor=64, masks=6, passes=3, darks=1, recon_iterations=80)
     bench = build_bench(cfg)
@@ -283,7 +283,7 @@ def test_view_window_shows_the_live_stream_under_xvfb(xvfb, tmp_path):
 
 
 def _message(topic, meta, array=None, seq=0):
-    from maskrun.daemon.stream import StreamHeader, StreamMessage
+    from maskrun.daemon.record.stream import StreamHeader, StreamMessage
 
     h = StreamHeader(topic=topic, seq=seq, global_seq=seq, t_s=0.0, dtype=array.dtype.str if array is not None else "",
                      shape=list(array.shape) if array is not None else [], meta=meta)
@@ -322,7 +322,7 @@ def test_phase_unwrapping_toggle_changes_levels_and_values():
 
 
 def test_axis_helpers_pick_readable_values():
-    from maskrun.daemon.view import log_ticks, nice_ceiling
+    from maskrun.daemon.show.view import log_ticks, nice_ceiling
 
     assert [nice_ceiling(x) for x in (0.0, 1.0, 1.05, 687.3, 0.0031)] == [1.0, 1.0, 1.2, 800.0, 0.004]
     assert [t[1] for t in log_ticks(0.002, 0.1)] == ["0.002", "0.005", "0.01", "0.02", "0.05", "0.1"]

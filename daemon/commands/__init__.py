@@ -1,0 +1,1 @@
+"""The command line: cli.py parses and dispatches, one cmd_*.py per verb."""

@@ -1,0 +1,1 @@
+"""Live reconstruction: the link from the sequencer to the worker processes, local or remote."""

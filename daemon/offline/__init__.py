@@ -1,0 +1,1 @@
+"""Reprocessing recorded runs after the fact, on this machine or on a cluster."""

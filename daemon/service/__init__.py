@@ -1,0 +1,1 @@
+"""The long-running daemon: its control socket, the activities it runs, its status, and the client."""
