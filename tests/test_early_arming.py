@@ -9,13 +9,13 @@ import numpy as np
 import pytest
 import zmq
 
-from maskrun.daemon import sequencer_frames
-from maskrun.daemon.bench import build_bench
+from maskrun.daemon.acquire import sequencer_frames
+from maskrun.daemon.acquire.bench import build_bench
 from maskrun.daemon.config import parse_config
-from maskrun.daemon.runfile import RunFile
-from maskrun.daemon.safety import make_acknowledgement
-from maskrun.daemon.sequencer import RunControl, RunPlan, State
-from maskrun.daemon.session import execute_run
+from maskrun.daemon.record.runfile import RunFile
+from maskrun.daemon.safety.safety import make_acknowledgement
+from maskrun.daemon.acquire.sequencer import RunControl, RunPlan, State
+from maskrun.daemon.acquire.session import execute_run
 from test_faults import bench_text
 
 
