@@ -52,6 +52,14 @@ class SequencerFrames:
             ledger.set_run_photons(ledger.photons_on_sample(self.plan.dose_photons_before))
         return ledger
 
+    def _prepare_exposure(self, k: int) -> None:
+        """The checks before any exposure (disk, dose, interlock and shutter; these may pause or stop),
+        then show mask k (with the modulator's retries)."""
+        self.disk.check()
+        self._check_dose_before()
+        self._ensure_light()
+        self._call("modulator", lambda: self.bench.modulator.show(k), f"showing mask {k + 1}")
+
     def _arm(self, k: int, set_index: int, early: bool = False) -> bool:
         """Show mask k and start its exposure now, so it runs while the previous frame is stored and
         published (the pipelined loop). The same checks as before any exposure come first (disk, dose,
@@ -83,10 +91,7 @@ class SequencerFrames:
             except Exception:  # disk near its reserve, dose near its limit, ...: met again on the ordinary path
                 return False
         else:
-            self.disk.check()
-            self._check_dose_before()
-            self._ensure_light()
-            self._call("modulator", lambda: mod.show(k), f"showing mask {k + 1}")
+            self._prepare_exposure(k)
         if mod.settle_s > 0:
             time.sleep(mod.settle_s)
         t = time.time()
@@ -271,10 +276,7 @@ class SequencerFrames:
                 self._frame_flags |= self._armed_flags
             else:
                 self._check_pause()
-                self.disk.check()
-                self._check_dose_before()
-                self._ensure_light()
-                self._call("modulator", lambda: mod.show(k), f"showing mask {k + 1}")
+                self._prepare_exposure(k)
                 if mod.settle_s > 0:
                     time.sleep(mod.settle_s)
             timeout = self.exposure_s + self.bench.config.camera.grab_timeout_s
