@@ -231,6 +231,9 @@ def test_a_resumed_run_tells_every_acknowledgement_and_its_outcome_alike(tmp_pat
     print_summary(resumed, c)
     table = c.file.getvalue()
     assert "Finished: 4 of 4 frame sets complete." in table and f"{true_last:.2%}" in table
+    # the session's own counts are named as such beside the file's (4 sets in the file, 2 of them now)
+    assert "4 in the file (2 in this session, 2 before the resume)" in table
+    assert f"{resumed.frames} in this session" in table
     page = write_report(summary.output_path).html.read_text()
     assert "All 2 acknowledgement(s)" in page and page.count("laser-safety") >= 2
     assert "resumed" in FLAG_EXPLANATIONS["after_resume"] and "pause" not in FLAG_EXPLANATIONS["after_resume"]

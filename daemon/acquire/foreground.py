@@ -272,8 +272,14 @@ def print_summary(summary: RunSummary, console: Console) -> None:
     if told:
         t.add_row("exposure (as used)", f"{told['exposure_s']:g} s" if told.get("exposure_s") else "unknown")
         t.add_row("passes planned, dark frames", f"{told.get('passes')}, {told.get('dark_frames')}")
-    t.add_row("frame sets complete", str(summary.passes_complete))
-    t.add_row("frames taken", f"{summary.frames} (+ {summary.darks} dark)")
+    earlier = summary.sets_in_file - summary.passes_complete  # sets of earlier sessions (a resumed run)
+    if earlier > 0:
+        t.add_row("frame sets complete", f"{summary.sets_in_file} in the file ({summary.passes_complete} in this "
+                  f"session, {earlier} before the resume)")
+        t.add_row("frames taken", f"{summary.frames} in this session (+ {summary.darks} dark)")
+    else:
+        t.add_row("frame sets complete", str(summary.passes_complete))
+        t.add_row("frames taken", f"{summary.frames} (+ {summary.darks} dark)")
     t.add_row("frames refused", f"{summary.rejected} (stale or repeated frame ids, retaken)"
               + (f"; {summary.refused} kept in /entry/refused" if summary.refused else ""))
     if summary.faults:
