@@ -50,9 +50,10 @@ def _ranking_path() -> Path:
 def _versions() -> str:
     import scipy
 
-    from . import fft as _fft  # mkl_fft is looked up there (a test replaces it)
-
-    _mkl_fft = _fft._mkl_fft
+    try:  # the version string only: whether mkl_fft is used is decided in fft_backends
+        import mkl_fft as _mkl_fft
+    except ImportError:
+        _mkl_fft = None
     parts = [f"numpy {np.__version__}", f"scipy {scipy.__version__}"]
     if _pyfftw is not None:
         parts.append(f"pyfftw {_pyfftw.__version__}")

@@ -41,7 +41,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from . import solvers as _s
+from .solvers_constraints import _Constraints
+from .solvers_er import _er_step, _run_er
+from .solvers_stopping import CONVERGED_REASONS
 from .ambiguities import relative_error_modulo_ambiguities
 from .metrics import norm as _norm
 from .metrics import relative_error
@@ -143,7 +145,7 @@ def run_hio(ws, x0, n: int, support, nonnegative: bool, residuals: list, stopper
         it = 0
         Sr = S.astype(ws.real_dtype)
         for it in range(1, hio_budget + 1):
-            p, _ = _s._er_step(ws, x)
+            p, _ = _er_step(ws, x)
             viol2 = hio_update(p, x, Sr, wr, beta, nonnegative)  # x <- HIO(x), in place
             E = float(np.sqrt(viol2)) / ws.norm_sqrty
             residuals.append(E)
@@ -181,12 +183,12 @@ def run_hio(ws, x0, n: int, support, nonnegative: bool, residuals: list, stopper
             if deadline is not None and time.perf_counter() >= deadline:
                 break
         used += it
-        x_est = constrained(_s._er_step(ws, x)[0], S_full, nonnegative) if stopper.reason == "" else x
+        x_est = constrained(_er_step(ws, x)[0], S_full, nonnegative) if stopper.reason == "" else x
         # ER polish with the final support
-        cons = _s._Constraints(S_full, nonnegative, shape, ws.dtype)
+        cons = _Constraints(S_full, nonnegative, shape, ws.dtype)
         n_er = min(settings.er_iterations, max(0, n - used))
         if n_er and stopper.reason == "":
-            x_est, it_er = _s._run_er(ws, x_est, n_er, cons, residuals, stopper, deadline, None, [])
+            x_est, it_er = _run_er(ws, x_est, n_er, cons, residuals, stopper, deadline, None, [])
             used += it_er
         if truth is not None:
             while len(errors) < len(residuals):
@@ -195,7 +197,7 @@ def run_hio(ws, x0, n: int, support, nonnegative: bool, residuals: list, stopper
         outcome = HIOOutcome(x_est, S_full, used, stopper.reason or "iterations", attempts, twin_total, res)
         if best is None or res < best.residual:
             best = outcome
-        if stopper.reason in _s.CONVERGED_REASONS or (deadline is not None and time.perf_counter() >= deadline):
+        if stopper.reason in CONVERGED_REASONS or (deadline is not None and time.perf_counter() >= deadline):
             break
         stopper.reason = ""
         if not restart and used >= n:

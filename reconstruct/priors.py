@@ -28,7 +28,7 @@ import time
 
 import numpy as np
 
-from . import solvers as _s
+from .solvers_poisson import _lbfgs
 from .fft import FFTPlan, PropagatorPlan
 from .metrics import norm as _norm
 from .metrics import relative_error
@@ -167,7 +167,7 @@ def run_poisson_tv(ws, x, n, cons, residuals, stopper, deadline, truth, errors, 
 
     def fit(lam, v0, iters):
         obj.weight = float(lam)
-        v, it, reason = _s._lbfgs(obj, v0, iters, gtol=0.0, ftol=1e-10, step0=step0, deadline=deadline)
+        v, it, reason = _lbfgs(obj, v0, iters, gtol=0.0, ftol=1e-10, step0=step0, deadline=deadline)
         mu = obj.mu(obj.unpack(v))
         dev = poisson_deviance(obj.y, mu)
         target = float(np.sum(expected_deviance(mu)))

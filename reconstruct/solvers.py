@@ -62,7 +62,7 @@ from .solvers_er import _er_step, _run_er, _run_er_single  # noqa: F401
 from .solvers_poisson import _dot, _lbfgs, _run_poisson  # noqa: F401
 from .solvers_raar import _raar_estimate, _RAARState, _run_raar  # noqa: F401
 from .solvers_spectral import spectral_initialization
-from .solvers_stopping import _Stopper, _SwitchStopper
+from .solvers_stopping import CONVERGED_REASONS, _Stopper, _SwitchStopper  # noqa: F401
 from .solvers_wf import _run_wf  # noqa: F401
 from .solvers_workspace import (  # noqa: F401
     _THREAD_CHOICE,
@@ -95,8 +95,6 @@ HYBRID_SWITCH_RESIDUAL = 0.02
 # residual that no longer improves stops the run as "precision floor".
 DEFAULT_TOLERANCE = {np.dtype(np.complex64): 3e-7, np.dtype(np.complex128): 1e-14}
 PRECISION_FLOOR = {np.dtype(np.complex64): 1e-5, np.dtype(np.complex128): 1e-12}
-# stop reasons that mean "converged" (the others: "iterations", "time budget", "stalled", ...)
-CONVERGED_REASONS = ("tolerance", "converged", "precision floor")
 HYBRID_STALL_FRACTION = 1e-3
 
 

@@ -4,6 +4,9 @@ from __future__ import annotations
 
 import numpy as np
 
+# stop reasons that mean "converged" (the others: "iterations", "time budget", "stalled", ...)
+CONVERGED_REASONS = ("tolerance", "converged", "precision floor")
+
 
 class _Stopper:
     """When to stop: residual <= tol ("tolerance"); residual improving by less than stall_tol

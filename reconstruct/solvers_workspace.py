@@ -1,9 +1,9 @@
 """The solvers' workspace: masks, data and preallocated buffers for one problem size, the split of
 the K masks over threads (measured once per shape and kept) and the thread pool that runs the chunks.
 
-The thread choice and the single-threaded FFT backend are looked up through ``solvers`` at call time
-(``solvers._choose_threads``, ``solvers._single_thread_backend``, ``solvers._THREAD_CHOICE``), so a
-test or benchmark that replaces them there still reaches every workspace.
+The thread choice and the single-threaded FFT backend (``_choose_threads``, ``_single_thread_backend``,
+``_THREAD_CHOICE``) live here and are looked up in this module at call time, so a test or benchmark
+that replaces them here reaches every workspace (``solvers`` only re-exports them).
 """
 from __future__ import annotations
 
@@ -13,6 +13,9 @@ import numpy as np
 
 from . import kernels
 from .fft import FFTPlan, PropagatorPlan, aligned_empty
+from .solvers_constraints import _Constraints
+from .solvers_er import _run_er
+from .solvers_stopping import _Stopper
 from .validation import check_dtype
 
 _POOL = None
@@ -39,9 +42,8 @@ def _single_thread_backend(shape, dtype) -> str:
 def _choose_threads(ws: "Workspace") -> int:
     """Threads for this workspace's masks: 1, or one per core when a measured ER iteration says so."""
     from . import fft as _fft
-    from . import solvers as _solvers
 
-    thread_choice = _solvers._THREAD_CHOICE
+    thread_choice = _THREAD_CHOICE
 
     cores = _fft._cpu_workers()
     K = ws.shape[0]
@@ -57,14 +59,14 @@ def _choose_threads(ws: "Workspace") -> int:
     ws.sqrty[...] = 1.0
     ws.norm_sqrty = float(np.sqrt(ws.sqrty.size))
     times = {}
-    unconstrained = _solvers._Constraints(None, False, ws.shape[1:], ws.dtype)
+    unconstrained = _Constraints(None, False, ws.shape[1:], ws.dtype)
     for n in (1, min(cores, K)):
         ws._set_threads(n)
-        _solvers._run_er(ws, x, 1, unconstrained, [], _solvers._Stopper(-1.0, 0.0), None, None, [])
+        _run_er(ws, x, 1, unconstrained, [], _Stopper(-1.0, 0.0), None, None, [])
         best = np.inf
         for _ in range(3):  # an ER iteration as the solvers run it (fused loop with one chunk)
             t0 = time.perf_counter()
-            _solvers._run_er(ws, x, 2, unconstrained, [], _solvers._Stopper(-1.0, 0.0), None, None, [])
+            _run_er(ws, x, 2, unconstrained, [], _Stopper(-1.0, 0.0), None, None, [])
             best = min(best, time.perf_counter() - t0)
         times[n] = best
     ws.sqrty[...], ws.norm_sqrty = saved
@@ -127,11 +129,9 @@ class Workspace:
         chunk with a single-threaded FFT), and keeps the faster; the choice
         is cached per (shape, dtype) like the FFT backend.
         """
-        from . import solvers as _solvers  # looked up there at call time: tests and benchmarks replace them
-
         K = self.shape[0]
         if threads == "auto":
-            threads = _solvers._choose_threads(self)
+            threads = _choose_threads(self)
         threads = max(1, min(int(threads), K))
         self.threads = threads
         bounds = np.linspace(0, K, threads + 1).round().astype(int)
@@ -144,7 +144,7 @@ class Workspace:
             backend = fft_backend if fft_backend in ("numpy", "scipy-1", "fftw-1", "mkl") else None
             self.chunk_plans = [
                 self._wrap(FFTPlan((c.stop - c.start,) + tuple(self.shape[1:]), self.dtype,
-                                   backend or _solvers._single_thread_backend((c.stop - c.start,) + tuple(self.shape[1:]),
+                                   backend or _single_thread_backend((c.stop - c.start,) + tuple(self.shape[1:]),
                                                                      self.dtype), unitary=False))
                 for c in self.chunks
             ]

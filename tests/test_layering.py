@@ -231,3 +231,33 @@ def test_daemon_modules_stay_short():
     long = {name: n for name, path in _daemon_modules().items()
             if (n := len(path.read_text().splitlines())) > MAX_LINES and name not in OVER_MAX_LINES}
     assert not long, f"daemon modules over {MAX_LINES} lines (split them along a seam): {long}"
+
+
+def _flat_package_graph(folder: str) -> dict[str, set[str]]:
+    """Module -> modules of the same flat package it imports (relative or ``maskrun.<folder>.x``; lazy
+    imports inside functions count, as for the daemon)."""
+    paths = {p.stem: p for p in sorted((ROOT / folder).glob("*.py"))}
+    graph = {}
+    for stem, path in paths.items():
+        found = set()
+        for node in ast.walk(ast.parse(path.read_text(), str(path))):
+            if isinstance(node, ast.Import):
+                found |= {a.name.split(".")[2] for a in node.names
+                          if a.name.split(".")[:2] == ["maskrun", folder] and len(a.name.split(".")) > 2}
+            elif isinstance(node, ast.ImportFrom):
+                parts = node.module.split(".") if node.module else []
+                if node.level == 1:
+                    base = parts[:1]
+                elif node.level == 0 and parts[:2] == ["maskrun", folder]:
+                    base = parts[2:3]
+                else:
+                    continue
+                found |= set(base) if base else {a.name for a in node.names}
+        graph[stem] = (found & set(paths)) - {stem}
+    return graph
+
+
+@pytest.mark.parametrize("folder", ["reconstruct", "drivers", "simulators"])
+def test_no_two_modules_of_a_flat_package_import_each_other(folder):
+    graph = _flat_package_graph(folder)
+    assert graph and not _cycle(graph), f"{folder}/ modules import each other: {' -> '.join(_cycle(graph))}"

@@ -6,6 +6,7 @@ import pytest
 
 from maskrun.reconstruct import forward, octanary_masks, relative_error, solve
 from maskrun.reconstruct import fft as rfft
+from maskrun.reconstruct import fft_backends as rfft_backends
 from maskrun.reconstruct import solvers as S
 
 
@@ -62,9 +63,9 @@ class _BatchedOrthoBug:
 
 def test_correctness_check_refuses_a_wrongly_scaled_backend(monkeypatch, tmp_path):
     monkeypatch.setenv("MASKRUN_FFT_CACHE", str(tmp_path))
-    monkeypatch.setattr(rfft, "_mkl_fft", _BatchedOrthoBug())
-    monkeypatch.setattr(rfft, "_CHECKED", {})
-    monkeypatch.setattr(rfft, "_CHOICE_CACHE", {})
+    monkeypatch.setattr(rfft_backends, "_mkl_fft", _BatchedOrthoBug())
+    monkeypatch.setattr(rfft_backends, "_CHECKED", {})
+    monkeypatch.setattr(rfft_backends, "_CHOICE_CACHE", {})
     shape = (8, 64, 64)
     assert "mkl" in rfft.available_backends()
     problem = rfft.check_backend("mkl", shape, np.complex64, unitary=True)
@@ -80,7 +81,7 @@ def test_correctness_check_refuses_a_wrongly_scaled_backend(monkeypatch, tmp_pat
 
 def test_choice_is_kept_on_disk_and_rechecked(monkeypatch, tmp_path):
     monkeypatch.setenv("MASKRUN_FFT_CACHE", str(tmp_path))
-    monkeypatch.setattr(rfft, "_CHOICE_CACHE", {})
+    monkeypatch.setattr(rfft_backends, "_CHOICE_CACHE", {})
     shape = (2, 64, 48)
     first = rfft._choose(shape, np.complex64, single_thread=True)
     ranking = json.loads((tmp_path / "fft-ranking.json").read_text())
@@ -89,7 +90,7 @@ def test_choice_is_kept_on_disk_and_rechecked(monkeypatch, tmp_path):
     # a later process takes the kept choice without measuring again
     entry["choice"] = "scipy-1"
     (tmp_path / "fft-ranking.json").write_text(json.dumps(ranking))
-    rfft._CHOICE_CACHE.clear()
+    rfft_backends._CHOICE_CACHE.clear()
     assert rfft._choose(shape, np.complex64, single_thread=True) == "scipy-1"
     if "fftw-1" in rfft.available_backends():
         rfft.FFTPlan((3, 40, 40), np.complex64, "fftw-1", unitary=False).forward(rfft.aligned_empty((3, 40, 40), np.complex64))

@@ -87,14 +87,15 @@ def test_iterates_stay_in_the_working_precision(dtype):
         assert out.dtype == dtype, runner.__name__
 
 
-def test_the_thread_choice_replaced_in_solvers_reaches_the_workspace(monkeypatch):
-    """The workspace lives in solvers_workspace.py but looks the thread choice and the single-threaded
-    FFT backend up through solvers at call time, so replacing them there (tests, benchmarks) takes effect."""
+def test_the_thread_choice_replaced_in_its_module_reaches_the_workspace(monkeypatch):
+    """The workspace looks the thread choice and the single-threaded FFT backend up in
+    solvers_workspace.py at call time, so replacing them there (tests, benchmarks) takes effect."""
     from maskrun.reconstruct import solvers as S
+    from maskrun.reconstruct import solvers_workspace as SW
 
     seen = []
-    monkeypatch.setattr(S, "_choose_threads", lambda ws: seen.append("threads") or 2)
-    monkeypatch.setattr(S, "_single_thread_backend", lambda shape, dtype: seen.append("backend") or "numpy")
+    monkeypatch.setattr(SW, "_choose_threads", lambda ws: seen.append("threads") or 2)
+    monkeypatch.setattr(SW, "_single_thread_backend", lambda shape, dtype: seen.append("backend") or "numpy")
     m = octanary_masks(4, (16, 16), seed=1)
     ws = S.Workspace(m, np.complex128)
     assert ws.threads == 2 and seen == ["threads", "backend", "backend"]
