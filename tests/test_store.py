@@ -145,3 +145,40 @@ def test_not_a_run_file(tmp_path):
         f["x"] = 1
     with pytest.raises(StoreError, match="not a maskrun run file"):
         RunFile(p)
+
+
+def test_a_reader_waiting_for_the_file_never_sees_it_before_swmr_and_never_breaks_the_creation(tmp_path):
+    """A viewer polling for a new run file (as `maskrun inspect --follow` does) opens it the moment it
+    appears. The file is made under a hidden name and gets its own name only in SWMR mode, so the
+    reader always finds the whole layout, and its lock never makes switching SWMR on fail (which
+    ended a run with a traceback before)."""
+    import threading
+
+    import h5py
+
+    paths = [tmp_path / f"run-{i}.h5" for i in range(12)]
+    seen, problems, done = [], [], threading.Event()
+
+    def reader():
+        while not done.is_set():
+            for p in paths:
+                if p in seen or not p.exists():
+                    continue
+                try:
+                    with h5py.File(p, "r", swmr=True) as f:
+                        assert "entry" in f and f.attrs["file_name"] == p.name
+                    seen.append(p)
+                except Exception as exc:  # noqa: BLE001 - every failure is what the test looks for
+                    problems.append(f"{p.name}: {exc!r}")
+
+    t = threading.Thread(target=reader, daemon=True)
+    t.start()
+    try:
+        for p in paths:
+            RunStore.create(p, _header()).close()
+    finally:
+        done.set()
+        t.join(10)
+    assert problems == []
+    assert not list(tmp_path.glob(".*.creating"))
+    assert len(seen) >= 1

@@ -57,6 +57,36 @@ def _encode(text: str, nbytes: int) -> bytes:
     return raw
 
 
+def _link_new(made: Path, path: Path) -> None:
+    """Give the file ``made`` the name ``path``, never over an existing file (a hard link, then the
+    old name removed; a plain rename where the file system has no hard links)."""
+    try:
+        os.link(made, path)
+    except FileExistsError:
+        raise StoreError(f"{path}: a run file of this name exists already; choose another name or folder") from None
+    except OSError:
+        if path.exists():
+            raise StoreError(f"{path}: a run file of this name exists already; choose another name or folder") from None
+        os.rename(made, path)
+        return
+    made.unlink()
+
+
+def _start_swmr(f: h5py.File, path: Path, wait_s: float = 3.0) -> None:
+    """Switch SWMR writing on; a reader holding the file's lock (opened while it was not in SWMR mode)
+    is waited for up to ``wait_s``, then named in a StoreError."""
+    deadline = time.monotonic() + wait_s
+    while True:
+        try:
+            f.swmr_mode = True
+            return
+        except (OSError, RuntimeError) as exc:
+            if "lock" not in str(exc) or time.monotonic() >= deadline:
+                raise StoreError(f"{path}: cannot switch on single-writer/multiple-reader mode ({exc}); another "
+                                 "program probably holds the file open: close it, then try again") from None
+            time.sleep(0.05)
+
+
 class RunStore:
     """Writer of one run file. Its calls are serialised by ``lock`` (the frame writer thread appends frames
     while the sequencer thread logs events)."""
@@ -150,17 +180,24 @@ class RunStore:
             raise StoreError(f"{path.parent}: cannot create the output folder ({exc.strerror})") from None
         if not os.access(path.parent, os.W_OK):
             raise StoreError(f"{path.parent}: output folder is not writable; choose another output_dir")
+        # made under a hidden name and linked to its own once in SWMR mode: a reader that opened it
+        # before (a `maskrun inspect --follow` waiting for the run) would hold a lock that makes
+        # switching SWMR on fail, and would read a file without its layout
+        making = path.with_name(f".{path.name}.creating")
+        making.unlink(missing_ok=True)
         try:
-            f = h5py.File(path, "w", libver="latest", rdcc_nbytes=0)
+            f = h5py.File(making, "w", libver="latest", rdcc_nbytes=0)
         except OSError as exc:
             raise StoreError(f"{path}: cannot create the run file ({exc})") from None
         try:
             write_layout(f, header)
+            f.attrs["file_name"] = path.name
             f.swmr_mode = True
             f.flush()
+            _link_new(making, path)
         except Exception:
             f.close()
-            path.unlink(missing_ok=True)
+            making.unlink(missing_ok=True)
             raise
         return cls(path, f, text_log)
 
@@ -182,7 +219,7 @@ class RunStore:
             import gc
 
             gc.collect()
-            f.swmr_mode = True
+            _start_swmr(f, path)
             store = cls(path, f, text_log)
         except Exception:
             f.close()
