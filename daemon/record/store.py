@@ -72,19 +72,27 @@ def _link_new(made: Path, path: Path) -> None:
     made.unlink()
 
 
-def _start_swmr(f: h5py.File, path: Path, wait_s: float = 3.0) -> None:
-    """Switch SWMR writing on; a reader holding the file's lock (opened while it was not in SWMR mode)
-    is waited for up to ``wait_s``, then named in a StoreError."""
+def _open_swmr_append(path: Path, wait_s: float = 3.0) -> h5py.File:
+    """Open a run file for appending in SWMR-write mode (newest format, no chunk cache). A reader
+    holding the file's lock (one that opened it while it was not in SWMR mode) is waited for up to
+    ``wait_s``, then named in a StoreError."""
+    fapl = h5py.h5p.create(h5py.h5p.FILE_ACCESS)
+    fapl.set_libver_bounds(h5py.h5f.LIBVER_LATEST, h5py.h5f.LIBVER_LATEST)
+    cache = list(fapl.get_cache())
+    cache[2] = 0  # rdcc_nbytes: raw data bypass the chunk cache, as in a new file
+    fapl.set_cache(*cache)
     deadline = time.monotonic() + wait_s
     while True:
         try:
-            f.swmr_mode = True
-            return
+            fid = h5py.h5f.open(os.fsencode(path), h5py.h5f.ACC_RDWR | h5py.h5f.ACC_SWMR_WRITE, fapl=fapl)
+            return h5py.File(fid)
         except (OSError, RuntimeError) as exc:
-            if "lock" not in str(exc) or time.monotonic() >= deadline:
-                raise StoreError(f"{path}: cannot switch on single-writer/multiple-reader mode ({exc}); another "
-                                 "program probably holds the file open: close it, then try again") from None
-            time.sleep(0.05)
+            if "lock" in str(exc) and time.monotonic() < deadline:
+                time.sleep(0.05)
+                continue
+            hint = ("another program probably holds the file open: close it, then try again" if "lock" in str(exc)
+                    else "it may need a repair first (maskrun resume repairs a killed run's file)")
+            raise StoreError(f"{path}: cannot open the run file for appending ({exc}); {hint}") from None
 
 
 class RunStore:
@@ -206,20 +214,15 @@ class RunStore:
         """Open an existing run file to append to it (resume). The file must have been closed cleanly
         or be repaired first (see daemon.acquire.recovery)."""
         path = Path(path)
-        try:
-            f = h5py.File(path, "a", libver="latest", rdcc_nbytes=0)
-        except OSError as exc:
-            raise StoreError(f"{path}: cannot open the run file for appending ({exc})") from None
+        # opened straight in SWMR-write mode: a file opened for appending first and switched to SWMR
+        # after it would, if killed in between, carry the plain "open for write" flag, which no reader
+        # (nor the repair) can open; killed in SWMR mode it stays readable and repairable. The row
+        # trimming in __init__ is a resize, allowed in SWMR
+        f = _open_swmr_append(path)
         if f.attrs.get("format") != FORMAT_NAME or "entry" not in f:
             f.close()
             raise StoreError(f"{path}: not a maskrun run file")
         try:
-            # SWMR mode first, while no dataset of the file is open (starting it with open dataset
-            # handles crashed HDF5 now and then); the row trimming in __init__ is a resize, allowed in SWMR
-            import gc
-
-            gc.collect()
-            _start_swmr(f, path)
             store = cls(path, f, text_log)
         except Exception:
             f.close()
