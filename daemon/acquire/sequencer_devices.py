@@ -17,6 +17,16 @@ from maskrun.daemon.record.store import FLAG_AFTER_PAUSE, FLAG_MODULATOR_RETRIED
 _DEVICE_ATTR = {"camera": "camera", "modulator": "modulator", "safety": "safety"}
 
 
+
+def device_fault_kind(device: str, exc: Exception) -> str:
+    """The run log's name for a device command that failed: ``<device>_no_ack`` (no reply in time),
+    ``<device>_bad_reply`` or ``<device>_disconnect`` (link lost)."""
+    if isinstance(exc, DeviceTimeout):
+        return f"{device}_no_ack"
+    if isinstance(exc, DeviceFault):
+        return f"{device}_bad_reply"
+    return f"{device}_disconnect"
+
 class SequencerDevices:
     """Device commands, light, pauses and stops of a run (mixed into ``Sequencer``)."""
 
@@ -124,13 +134,13 @@ class SequencerDevices:
             try:
                 result = fn()
             except DeviceDisconnected as exc:
-                self._fault(f"{device}_disconnect", f"{what}: {device} link lost ({exc.detail}); reconnecting")
+                self._fault(device_fault_kind(device, exc), f"{what}: {device} link lost ({exc.detail}); reconnecting")
                 self._reconnect(device)
                 failures += 1
                 continue
             except (DeviceTimeout, DeviceFault) as exc:
                 failures += 1
-                kind = f"{device}_no_ack" if isinstance(exc, DeviceTimeout) else f"{device}_bad_reply"
+                kind = device_fault_kind(device, exc)
                 if failures > self.rec.retries:
                     self._fault(kind, f"{what}: {exc.detail} ({failures} attempts)")
                     self._pause(f"{device} does not answer ({what}: {exc.detail}) after {failures} attempts", kind="paused")

@@ -14,6 +14,7 @@ from maskrun.drivers.errors import DeviceDisconnected, DeviceFault
 
 from maskrun.daemon.record.checks import check_frame, downsample_preview
 from maskrun.daemon.acquire.frame_convert import electrons_shifted
+from maskrun.daemon.acquire.sequencer_devices import device_fault_kind
 from maskrun.daemon.acquire.sequencer_types import DoseLimitStop, RunAborted, State
 from maskrun.daemon.record.store import (
     FLAG_AFTER_RESUME,
@@ -83,9 +84,7 @@ class SequencerFrames:
                     return False
                 mod.show(k)
             except (DeviceTimeout, DeviceFault, DeviceDisconnected) as exc:  # logged as the retries log it
-                kind = ("no_ack" if isinstance(exc, DeviceTimeout) else
-                        "bad_reply" if isinstance(exc, DeviceFault) else "disconnect")
-                self._fault(f"modulator_{kind}", f"showing mask {k + 1}: {exc.detail}; tried again once the "
+                self._fault(device_fault_kind("modulator", exc), f"showing mask {k + 1}: {exc.detail}; tried again once the "
                             "frame before it is stored")
                 return False
             except Exception:  # disk near its reserve, dose near its limit, ...: met again on the ordinary path
